@@ -1,0 +1,5 @@
+import sys
+
+from tracker.cli import main
+
+sys.exit(main())

@@ -1,0 +1,179 @@
+"""The `tracker` command line: global options, subcommands, exit codes.
+
+Exit codes: 0 success; 1 the work ran but something failed (a drop file was rejected,
+an export failed); 2 usage or configuration error (nothing was written).
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+from tracker import __version__
+from tracker.config import ConfigError
+from tracker.paths import default_demo_store_path, resolve_store_path
+from tracker.store.errors import StoreError
+
+CAUTION = (
+    "Statistical estimates, not investment advice. Follow your firm's model-risk and "
+    "investment policies and licensed advice."
+)
+
+
+class UsageError(Exception):
+    pass
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="tracker",
+        description="Regime-aware tracking of factor risk premia. " + CAUTION,
+    )
+    parser.add_argument("--version", action="version", version=f"tracker {__version__}")
+    parser.add_argument(
+        "--store",
+        metavar="PATH",
+        help="the store file (default: $TRACKER_STORE, else the per-user data folder); "
+        "a missing store is created with the invented demo scenario",
+    )
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    p = sub.add_parser("ui", help="open the terminal interface (the default command)")
+    p.set_defaults(handler=_cmd_ui)
+
+    p = sub.add_parser("demo", help="open the interface on the demo store and replay held-back days into its inbox")
+    p.add_argument("--pace", type=float, default=15.0, metavar="SECONDS",
+                   help="seconds between replayed drop files (default 15; 0 drops none)")
+    p.add_argument("--no-ui", action="store_true", help="replay only, without the interface")
+    p.set_defaults(handler=_cmd_demo)
+
+    p = sub.add_parser("init", help="create a store (with the demo scenario unless --empty)")
+    p.add_argument("--empty", action="store_true", help="create an empty store for your own data")
+    p.set_defaults(handler=_cmd_init)
+
+    p = sub.add_parser("status", help="store path, factor and row counts, date range, last fit, pending drops")
+    p.set_defaults(handler=_cmd_status)
+
+    p = sub.add_parser("export", help="write stored tables as CSV or Parquet files")
+    p.add_argument("tables", nargs="*", metavar="TABLE", help="tables to export (default: all readable tables)")
+    p.add_argument("--format", choices=("csv", "parquet"), default="csv")
+    p.add_argument("--out", metavar="DIR", default="tracker-export", help="output folder (default ./tracker-export)")
+    p.set_defaults(handler=_cmd_export)
+    return parser
+
+
+def _open(args, *, create_demo: bool = True):
+    from tracker.store.bootstrap import open_store
+
+    return open_store(resolve_store_path(args.store), create_demo=create_demo)
+
+
+def _cmd_ui(args) -> int:
+    store, config = _open(args)
+    from tracker.ui.app import run_app
+
+    run_app(store, config)
+    return 0
+
+
+def _cmd_demo(args) -> int:
+    if args.pace < 0:
+        raise UsageError("--pace must be zero or positive")
+    if args.store is None and not _env_store():
+        args.store = str(default_demo_store_path())
+    store, config = _open(args)
+    from tracker.service.demo import DemoReplay
+
+    replay = DemoReplay(store, config, pace=args.pace)
+    if args.no_ui:
+        replay.run_blocking(echo=print)
+        return 0
+    replay.start()
+    try:
+        from tracker.ui.app import run_app
+
+        run_app(store, config)
+    finally:
+        replay.stop()
+    return 0
+
+
+def _env_store() -> bool:
+    import os
+
+    return bool(os.environ.get("TRACKER_STORE"))
+
+
+def _cmd_init(args) -> int:
+    path = resolve_store_path(args.store)
+    if path.exists():
+        raise UsageError(f"a store already exists at {path}")
+    store, config = _open(args, create_demo=not args.empty)
+    print(f"created {'an empty' if args.empty else 'a demo'} store at {store.path}")
+    print(f"inbox: {config.inbox_path(store.folder)}")
+    return 0
+
+
+def _cmd_status(args) -> int:
+    store, config = _open(args)
+    from tracker.service.status import factor_summary, store_status
+
+    st = store_status(store, config.inbox_path(store.folder))
+    print(f"store:        {st.path}")
+    if st.scenario:
+        print(f"scenario:     {st.scenario} -- every name and number in it is invented")
+    print(f"inbox:        {st.inbox} ({st.pending_drops} pending)")
+    print(f"factors:      {st.counts['factors']}    assets: {st.counts['assets']}")
+    print(f"date range:   {st.first_date or '-'} .. {st.last_date or '-'}")
+    print(f"last fit:     {st.last_fit or 'never'}")
+    print(f"last update:  {st.last_run or 'never'}")
+    drops = ", ".join(f"{k} {v}" for k, v in sorted(st.drops.items())) or "none"
+    print(f"drop files:   {drops}")
+    print("rows:")
+    for table, n in st.counts.items():
+        print(f"  {table:<18} {n:>10,}")
+    summary = factor_summary(store)
+    if len(summary):
+        print("factors (descriptive, whole history; annualised by 252 or 12):")
+        print(f"  {'id':<8} {'obs':>6} {'last date':>10} {'mean':>7} {'vol':>7} {'Sharpe':>7}")
+        for r in summary.itertuples():
+            last = r.last_date.strftime("%Y-%m-%d") if r.n_obs else "-"
+            print(f"  {r.factor_id:<8} {r.n_obs:>6} {last:>10} {_pct(r.mean_ann)} {_pct(r.vol_ann)} {r.sharpe_ann:>7.2f}")
+    print(CAUTION)
+    return 0
+
+
+def _pct(x: float) -> str:
+    return f"{x * 100:>6.2f}%" if x == x else f"{'-':>7}"
+
+
+def _cmd_export(args) -> int:
+    store, _ = _open(args)
+    from tracker.service.export import ExportError, export_tables
+
+    try:
+        written = export_tables(store, list(args.tables), Path(args.out), args.format)
+    except ExportError as exc:
+        raise UsageError(str(exc)) from None
+    for path in written:
+        print(path)
+    return 0
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if getattr(args, "handler", None) is None:
+        args.handler = _cmd_ui
+    try:
+        return int(args.handler(args) or 0)
+    except (ConfigError, StoreError, UsageError) as exc:
+        print(f"tracker: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

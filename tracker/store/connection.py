@@ -1,0 +1,159 @@
+"""Opening the DuckDB store: short connections, retried while another process holds it.
+
+DuckDB lets one process open a file read-write, or many processes read-only, never both.
+The UI, a headless watcher and one-off commands must share one file, so every piece of
+work here opens the store, does one short unit of work and closes it again. Estimation
+runs between connections, never while one is open. When another process holds the file,
+opening is retried with back-off for ``busy_timeout`` seconds and then fails with one
+clear line (:class:`StoreBusy`). Inside one process a lock serialises access, so worker
+threads never hold two connections to the file at once.
+"""
+
+from __future__ import annotations
+
+import os
+import random
+import threading
+import time
+from collections.abc import Iterator
+from contextlib import contextmanager
+from pathlib import Path
+
+import duckdb
+
+from tracker.store.errors import StoreBusy, StoreError
+from tracker.store.sqlfiles import migrations
+
+_LOCK_MARKERS = ("could not set lock", "conflicting lock", "lock on file")
+_process_locks: dict[str, threading.RLock] = {}
+_process_locks_guard = threading.Lock()
+
+
+def _lock_for(path: Path) -> threading.RLock:
+    key = str(path.resolve())
+    with _process_locks_guard:
+        return _process_locks.setdefault(key, threading.RLock())
+
+
+def _is_lock_conflict(exc: Exception) -> bool:
+    text = str(exc).lower()
+    return any(marker in text for marker in _LOCK_MARKERS)
+
+
+class Store:
+    """A DuckDB store file and how to open it.
+
+    Parameters
+    ----------
+    path : Path
+        The ``.duckdb`` file. Its folder holds the inbox and the configuration file.
+    busy_timeout : float
+        Seconds to keep retrying while another process holds the file.
+    """
+
+    def __init__(self, path: Path, *, busy_timeout: float = 30.0) -> None:
+        self.path = Path(path)
+        self.busy_timeout = float(busy_timeout)
+        self._lock = _lock_for(self.path)
+
+    @property
+    def folder(self) -> Path:
+        return self.path.parent
+
+    def exists(self) -> bool:
+        return self.path.exists()
+
+    @contextmanager
+    def connect(self) -> Iterator[duckdb.DuckDBPyConnection]:
+        """Open the store for one short unit of work and close it afterwards."""
+        with self._lock:
+            con = self._open_with_retry()
+            try:
+                yield con
+            finally:
+                con.close()
+
+    @contextmanager
+    def transaction(self) -> Iterator[duckdb.DuckDBPyConnection]:
+        """One connection, one transaction: committed on success, rolled back on any error."""
+        with self.connect() as con:
+            con.execute("BEGIN TRANSACTION")
+            try:
+                yield con
+            except BaseException:
+                con.execute("ROLLBACK")
+                raise
+            con.execute("COMMIT")
+
+    def _open_with_retry(self) -> duckdb.DuckDBPyConnection:
+        deadline = time.monotonic() + self.busy_timeout
+        delay = 0.02
+        while True:
+            try:
+                return duckdb.connect(str(self.path), config={"threads": "2"})
+            except duckdb.Error as exc:
+                if not _is_lock_conflict(exc):
+                    raise StoreError(_describe_open_error(self.path, exc)) from exc
+                if time.monotonic() >= deadline:
+                    raise StoreBusy(
+                        f"store {self.path} is held by another process for more than "
+                        f"{self.busy_timeout:g} s; try again, or raise [store] busy_timeout_s"
+                    ) from exc
+                time.sleep(delay * (0.5 + random.random()))
+                delay = min(delay * 2, 0.5)
+
+
+def _describe_open_error(path: Path, exc: Exception) -> str:
+    text = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+    if "not a valid duckdb" in text.lower() or "invalid" in text.lower() or "corrupt" in text.lower():
+        return f"store {path} is not a readable DuckDB store file ({text})"
+    return f"cannot open store {path}: {text}"
+
+
+def schema_version(con: duckdb.DuckDBPyConnection) -> int:
+    exists = con.execute(
+        "SELECT count(*) FROM information_schema.tables WHERE table_name = 'schema_migrations'"
+    ).fetchone()[0]
+    if not exists:
+        return 0
+    return int(con.execute("SELECT coalesce(max(version), 0) FROM schema_migrations").fetchone()[0])
+
+
+def migrate(con: duckdb.DuckDBPyConnection) -> list[int]:
+    """Apply the pending migrations in order, all in one transaction; return their versions."""
+    con.execute(
+        "CREATE TABLE IF NOT EXISTS schema_migrations ("
+        " version INTEGER PRIMARY KEY, name VARCHAR NOT NULL,"
+        " applied_at TIMESTAMP NOT NULL DEFAULT current_timestamp)"
+    )
+    current = schema_version(con)
+    known = migrations()
+    if current > len(known):
+        raise StoreError(
+            f"store schema version {current} is newer than this program knows ({len(known)}); upgrade the tool"
+        )
+    applied = []
+    pending = [m for m in known if m.version > current]
+    if not pending:
+        return applied
+    con.execute("BEGIN TRANSACTION")
+    try:
+        for m in pending:
+            con.execute(m.text)
+            con.execute("INSERT INTO schema_migrations (version, name) VALUES (?, ?)", [m.version, m.name])
+            applied.append(m.version)
+    except BaseException:
+        con.execute("ROLLBACK")
+        raise
+    con.execute("COMMIT")
+    return applied
+
+
+def check_writable_folder(folder: Path) -> None:
+    """Create ``folder`` if needed and fail with one line when it cannot be written."""
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise StoreError(f"cannot create store folder {folder}: {exc.strerror or exc}") from exc
+    if not os.access(folder, os.W_OK | os.X_OK):
+        raise StoreError(f"store folder {folder} is not writable")
