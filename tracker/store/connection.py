@@ -22,7 +22,7 @@ from pathlib import Path
 import duckdb
 
 from tracker.store.errors import StoreBusy, StoreError
-from tracker.store.sqlfiles import migrations
+from tracker.store.sqlfiles import migrations, sql
 
 _LOCK_MARKERS = ("could not set lock", "conflicting lock", "lock on file")
 _process_locks: dict[str, threading.RLock] = {}
@@ -111,21 +111,14 @@ def _describe_open_error(path: Path, exc: Exception) -> str:
 
 
 def schema_version(con: duckdb.DuckDBPyConnection) -> int:
-    exists = con.execute(
-        "SELECT count(*) FROM information_schema.tables WHERE table_name = 'schema_migrations'"
-    ).fetchone()[0]
-    if not exists:
+    if not con.execute(sql("catalog.has_migrations_table")).fetchone()[0]:
         return 0
-    return int(con.execute("SELECT coalesce(max(version), 0) FROM schema_migrations").fetchone()[0])
+    return int(con.execute(sql("catalog.schema_version")).fetchone()[0])
 
 
 def migrate(con: duckdb.DuckDBPyConnection) -> list[int]:
     """Apply the pending migrations in order, all in one transaction; return their versions."""
-    con.execute(
-        "CREATE TABLE IF NOT EXISTS schema_migrations ("
-        " version INTEGER PRIMARY KEY, name VARCHAR NOT NULL,"
-        " applied_at TIMESTAMP NOT NULL DEFAULT current_timestamp)"
-    )
+    con.execute(sql("catalog.create_migrations_table"))
     current = schema_version(con)
     known = migrations()
     if current > len(known):
@@ -140,7 +133,7 @@ def migrate(con: duckdb.DuckDBPyConnection) -> list[int]:
     try:
         for m in pending:
             con.execute(m.text)
-            con.execute("INSERT INTO schema_migrations (version, name) VALUES (?, ?)", [m.version, m.name])
+            con.execute(sql("catalog.record_migration"), [m.version, m.name])
             applied.append(m.version)
     except BaseException:
         con.execute("ROLLBACK")

@@ -1,0 +1,31 @@
+"""Shared fixtures: stores built once per session in temporary folders."""
+
+from __future__ import annotations
+
+import shutil
+from pathlib import Path
+
+import pytest
+
+from tracker.store.bootstrap import open_store
+
+
+@pytest.fixture(scope="session")
+def demo_store_template(tmp_path_factory) -> Path:
+    """A demo store (history only, no estimates) built once; copy it before writing."""
+    folder = tmp_path_factory.mktemp("demo-template")
+    store, _ = open_store(folder / "store.duckdb")
+    return store.path
+
+
+@pytest.fixture()
+def demo_store(demo_store_template, tmp_path):
+    """A private copy of the demo store: (Store, Config)."""
+    target = tmp_path / "store"
+    shutil.copytree(demo_store_template.parent, target)
+    return open_store(target / "store.duckdb")
+
+
+@pytest.fixture()
+def empty_store(tmp_path):
+    return open_store(tmp_path / "empty" / "store.duckdb", create_demo=False)
