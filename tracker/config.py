@@ -50,9 +50,8 @@ class ModelSettings:
     market_seeds: int = 3
     seed: int = 20261202
     min_obs: int = 120              # fewer observations: 'too little data', no numbers
-    refit_every_days: int = 63      # scheduled refit after this many new rows
-    drift_window: int = 63          # drift check: mean predictive log-likelihood over this window...
-    drift_sigma: float = 4.0        # ...this many standard errors below its norm triggers a refit
+    refit_every_days: int = 63      # scheduled refit after this many new rows (the DRIFT warning,
+                                    # see [warnings] drift_z, also triggers one)
 
 
 @dataclass(frozen=True)
@@ -122,7 +121,8 @@ def _coerce(section: str, key: str, value: Any, default: Any) -> Any:
     bounds = _RANGES.get((section, key))
     if bounds is not None and not (bounds[0] <= value <= bounds[1]):
         raise ConfigError(f"{name} must be between {bounds[0]} and {bounds[1]}, got {value!r}")
-    if bounds is None and isinstance(value, (int, float)) and not isinstance(value, bool) and value <= 0 and key != "seed":
+    if (section != "warnings" and bounds is None and isinstance(value, (int, float))
+            and not isinstance(value, bool) and value <= 0 and key != "seed"):
         raise ConfigError(f"{name} must be positive, got {value!r}")
     return value
 
@@ -137,7 +137,10 @@ def _build(section: str, cls: type, raw: Any) -> Any:
         if key not in known:
             raise ConfigError(f"unknown key [{section}] {key}; known keys: {', '.join(sorted(known))}")
         values[key] = _coerce(section, key, value, getattr(defaults, key))
-    return dataclasses.replace(defaults, **values)
+    try:
+        return dataclasses.replace(defaults, **values)
+    except ValueError as exc:  # the section's own checks (e.g. WarningThresholds)
+        raise ConfigError(str(exc).replace(f"{section}.", f"[{section}] ", 1)) from None
 
 
 def config_from_dict(raw: dict[str, Any]) -> Config:

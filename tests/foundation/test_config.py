@@ -43,3 +43,23 @@ def test_invalid_toml_is_one_line(tmp_path):
 def test_default_file_is_valid_toml():
     parsed = tomllib.loads(default_config_text())
     assert set(parsed) >= {"store", "ingest", "models", "assets", "ui"}
+
+
+@pytest.mark.parametrize(
+    "text, key",
+    [
+        ("[warnings]\nmultiple_testing_method = 'bonferroni'\n", "[warnings] multiple_testing_method"),
+        ("[warnings]\nnoise_band_level = 2.0\n", "[warnings] noise_band_level"),
+        ("[warnings]\nhurdle_t = 'high'\n", "[warnings] hurdle_t"),
+    ],
+)
+def test_warning_thresholds_are_validated_too(tmp_path, text, key):
+    (tmp_path / "tracker.toml").write_text(text)
+    with pytest.raises(ConfigError) as info:
+        load_config(tmp_path)
+    assert key in str(info.value)
+
+
+def test_warning_threshold_reaches_the_rules(tmp_path):
+    (tmp_path / "tracker.toml").write_text("[warnings]\nhurdle_t = 2.5\n")
+    assert load_config(tmp_path).warnings.hurdle_t == 2.5

@@ -1,0 +1,88 @@
+-- Inputs and outputs of the estimation service.
+
+-- name: factors
+SELECT factor_id, label, frequency, is_traded, is_new, start_date FROM factors ORDER BY factor_id;
+
+-- name: factor_returns_all
+SELECT factor_id, date, ret FROM factor_returns ORDER BY factor_id, date;
+
+-- name: factor_returns_for
+SELECT factor_id, date, ret FROM factor_returns WHERE factor_id = ? ORDER BY date;
+
+-- name: factor_returns_after
+-- New rows for one factor after its filter state's date.
+SELECT date, ret FROM factor_returns WHERE factor_id = ? AND date > ? ORDER BY date;
+
+-- name: last_dates
+SELECT factor_id, max(date) AS last_date, count(*) AS n_obs FROM factor_returns GROUP BY factor_id;
+
+-- name: filter_states
+SELECT subject_id, model, fit_id, through_date, state_json FROM filter_states;
+
+-- name: upsert_filter_state
+INSERT OR REPLACE INTO filter_states (subject_id, model, fit_id, through_date, state_json, updated_at)
+VALUES (?, ?, ?, ?, ?, current_timestamp);
+
+-- name: next_fit_id
+SELECT nextval('seq_fit_id');
+
+-- name: next_run_id
+SELECT nextval('seq_run_id');
+
+-- name: retire_fits
+UPDATE model_fits SET is_current = FALSE WHERE subject_id = ? AND model = ? AND is_current;
+
+-- name: insert_fit
+INSERT INTO model_fits (fit_id, subject_id, model, status, message, params_json, loglik, n_obs,
+                        converged, data_from, data_through, reason, is_current)
+VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, TRUE);
+
+-- name: current_fits
+SELECT fit_id, subject_id, model, status, message, params_json, loglik, n_obs, converged,
+       data_from, data_through, reason, fitted_at
+FROM model_fits WHERE is_current ORDER BY subject_id, model;
+
+-- name: current_vintage
+SELECT subject_id, max(vintage) AS vintage FROM (
+    SELECT factor_id AS subject_id, vintage FROM premium_estimates
+    UNION ALL SELECT subject_id, vintage FROM regime_estimates
+) GROUP BY subject_id;
+
+-- name: last_estimate_dates
+SELECT factor_id, max(date) AS last_date FROM premium_estimates WHERE superseded_at IS NULL GROUP BY factor_id;
+
+-- name: supersede_premium
+UPDATE premium_estimates SET superseded_at = current_timestamp
+WHERE factor_id = ? AND date >= ? AND superseded_at IS NULL;
+
+-- name: supersede_regime
+UPDATE regime_estimates SET superseded_at = current_timestamp
+WHERE subject_id = ? AND date >= ? AND superseded_at IS NULL;
+
+-- name: supersede_warnings
+UPDATE warnings SET superseded_at = current_timestamp
+WHERE subject_id = ? AND date >= ? AND superseded_at IS NULL;
+
+-- name: insert_premium_frame
+INSERT INTO premium_estimates (factor_id, date, vintage, fit_id, premium, premium_sd, premium_ann,
+    premium_ann_sd, regime_premium, regime_premium_sd, vol_forecast, sharpe_ann, snr, std_error, loglik_t)
+SELECT factor_id, date, vintage, fit_id, premium, premium_sd, premium_ann, premium_ann_sd,
+    regime_premium, regime_premium_sd, vol_forecast, sharpe_ann, snr, std_error, loglik_t
+FROM incoming_frame;
+
+-- name: insert_regime_frame
+INSERT INTO regime_estimates (subject_id, date, vintage, fit_id, n_regimes, regime, probability, filtered, predicted)
+SELECT subject_id, date, vintage, fit_id, n_regimes, regime, probability, filtered, predicted FROM incoming_frame;
+
+-- name: insert_warning_frame
+INSERT INTO warnings (subject_id, date, vintage, code, severity, message, detail, value, threshold, source)
+SELECT subject_id, date, vintage, code, severity, message, detail, value, threshold, source FROM incoming_frame;
+
+-- name: insert_run
+INSERT INTO estimation_runs (run_id, kind, reason, subjects, from_date, through_date, started_at, status, message)
+VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?);
+
+-- name: bump_version
+INSERT OR REPLACE INTO store_meta (key, value)
+SELECT 'estimates_version', CAST(coalesce(max(CAST(value AS BIGINT)), 0) + 1 AS VARCHAR)
+FROM store_meta WHERE key = 'estimates_version';

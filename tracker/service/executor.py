@@ -1,0 +1,54 @@
+"""One interface for fanning refits out: in process, local processes, or Dask.
+
+Each task is a top-level picklable function applied to one picklable item; results come
+back in input order, so every executor gives identical results.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Callable, Iterable, Iterator
+from concurrent.futures import ProcessPoolExecutor
+from typing import Any, Protocol
+
+
+class Executor(Protocol):
+    def map(self, fn: Callable[[Any], Any], items: Iterable[Any]) -> Iterator[Any]: ...
+
+
+class SerialExecutor:
+    """Runs tasks one after another in this process (tests, tiny stores)."""
+
+    def map(self, fn, items):
+        for item in items:
+            yield fn(item)
+
+
+class LocalProcessExecutor:
+    """Local worker processes; the default. ``workers=None`` uses the machine's cores."""
+
+    def __init__(self, workers: int | None = None) -> None:
+        self.workers = workers or max(1, os.cpu_count() or 1)
+
+    def map(self, fn, items):
+        items = list(items)
+        if self.workers == 1 or len(items) <= 1:
+            yield from SerialExecutor().map(fn, items)
+            return
+        with ProcessPoolExecutor(max_workers=min(self.workers, len(items))) as pool:
+            yield from pool.map(fn, items)
+
+
+class DaskExecutor:
+    """A Dask distributed cluster at ``address`` (``[service] dask_scheduler`` in the config)."""
+
+    def __init__(self, address: str) -> None:
+        self.address = address
+
+    def map(self, fn, items):
+        from distributed import Client  # optional dependency: the `dask` extra
+
+        with Client(self.address) as client:
+            futures = client.map(fn, list(items), pure=False)
+            for fut in futures:
+                yield fut.result()
