@@ -44,7 +44,7 @@ class ModelSettings:
     ewma_decay_daily: float = 0.94
     ewma_decay_monthly: float = 0.97
     regimes: int = 2                # per-factor Markov-switching regimes: 2 or 3
-    regime_starts: int = 8          # seeded random starts per Markov-switching fit
+    regime_starts: int = 4          # starting points per Markov-switching fit (seeded)
     market_states_min: int = 2
     market_states_max: int = 4
     market_seeds: int = 3

@@ -21,7 +21,7 @@ SELECT subject_id, model, fit_id, through_date, state_json FROM filter_states;
 
 -- name: upsert_filter_state
 INSERT OR REPLACE INTO filter_states (subject_id, model, fit_id, through_date, state_json, updated_at)
-VALUES (?, ?, ?, ?, ?, current_timestamp);
+VALUES (?, ?, ?, ?, ?, ?);
 
 -- name: next_fit_id
 SELECT nextval('seq_fit_id');
@@ -86,3 +86,35 @@ VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?);
 INSERT OR REPLACE INTO store_meta (key, value)
 SELECT 'estimates_version', CAST(coalesce(max(CAST(value AS BIGINT)), 0) + 1 AS VARCHAR)
 FROM store_meta WHERE key = 'estimates_version';
+
+-- name: pending_revisions
+-- Factor revisions recorded after the factor's filter state was last written.
+SELECT r.series_id AS factor_id, min(r.date) AS first_date, count(*) AS n
+FROM revisions r
+JOIN filter_states s ON s.subject_id = r.series_id AND s.model = 'premium'
+WHERE r.series_kind = 'factor' AND r.revised_at >= s.updated_at
+GROUP BY r.series_id;
+
+-- name: recent_revision_counts
+SELECT series_id AS factor_id, count(*) AS n FROM revisions
+WHERE series_kind = 'factor' AND revised_at >= ? GROUP BY series_id;
+
+-- name: latest_warning_codes
+-- Codes in force at each factor's latest estimated date.
+SELECT w.subject_id, list(w.code) AS codes
+FROM warnings w
+JOIN (SELECT factor_id, max(date) AS d FROM premium_estimates WHERE superseded_at IS NULL GROUP BY factor_id) l
+  ON l.factor_id = w.subject_id AND l.d = w.date
+WHERE w.superseded_at IS NULL
+GROUP BY w.subject_id;
+
+-- name: current_premium_history
+SELECT factor_id, date, premium, premium_sd, std_error, loglik_t
+FROM premium_estimates WHERE superseded_at IS NULL AND factor_id = ? ORDER BY date;
+
+-- name: current_regime_history
+SELECT date, filtered FROM regime_estimates
+WHERE superseded_at IS NULL AND subject_id = ? ORDER BY date;
+
+-- name: state_stamps
+SELECT subject_id, model, through_date, updated_at FROM filter_states;

@@ -14,7 +14,7 @@ observation sets ``mu`` to ``f`` with variance ``c * h`` and adds only the const
 ``FilterState.weak_prior(mean, var)``: ``mu`` at the row *before* the first row is
 ``N(mean, var)``, so the first row is predicted with variance ``var + q``.
 
-Rows where ``f`` or ``h`` is not finite (or ``h < 0``) are missing: the state is predicted
+Rows where ``f`` or ``h`` is not finite, or ``h <= 0``, are missing: the state is predicted
 through them without an update and they add nothing to the likelihood.
 
 Real-time outputs come from ``filter_local_level`` only; ``smooth_hindsight`` uses the whole
@@ -45,6 +45,7 @@ _LOG_2PI = math.log(2.0 * math.pi)
 _LOG_SNR_BOUNDS = (-40.0, 12.0)
 _LOG_C_BOUNDS = (-25.0, 25.0)
 _GRID_STEP = 4.0
+_FLAT_LOGLIK = 1e-7  # log-likelihood gain too small to tell q from zero
 _WARM_HALF_WIDTH = 1.0
 
 
@@ -70,6 +71,11 @@ class LocalLevelParams:
 
     q: float
     c: float
+
+    def __post_init__(self) -> None:
+        # NaN is allowed: failed fits carry NaN parameters
+        if self.q < 0.0 or self.c <= 0.0:
+            raise ValueError("need q >= 0 and c > 0")
 
     def snr(self, h) -> np.ndarray:
         """Signal-to-noise ratio ``q / (c * h[t])``, shape of ``h``."""
@@ -223,7 +229,8 @@ def _inputs(y, h) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     if y.ndim != 1 or h.shape != y.shape:
         raise ValueError("y and h must be 1-D arrays of the same shape (T,)")
     with np.errstate(invalid="ignore"):
-        valid = np.isfinite(y) & np.isfinite(h) & (h >= 0.0)
+        # h = 0 would claim a noise-free return (stale data gives it): treated as missing
+        valid = np.isfinite(y) & np.isfinite(h) & (h > 0.0)
     return y, h, valid
 
 
@@ -308,7 +315,7 @@ def filter_local_level(params: LocalLevelParams, y, h, state: FilterState | None
     if first >= 0:
         mean[first], var[first] = y[first], R[first]
         # exact diffuse term: only the constant remains since F_inf = 1 here (Durbin &
-        # Koopman 2012, sec. 7.2.2); statsmodels counts it the same way
+        # Koopman 2012, ch. 7, diffuse loglikelihood); statsmodels counts it the same way
         ll[first] = -0.5 * _LOG_2PI
         use = use.copy()
         use[first] = True
@@ -368,7 +375,7 @@ def _failed_fit(status: str, message: str, n_iter: int = 0) -> LocalLevelFit:
 
 
 def _profile(x: float, y, h, valid, h_bar) -> tuple[float, float]:
-    """Diffuse log likelihood with ``c`` concentrated out (Durbin & Koopman 2012, sec. 2.10).
+    """Diffuse log likelihood with ``c`` concentrated out (Durbin & Koopman 2012, ch. 2).
 
     ``x = log(q / (c * h_bar))``.  With an exact diffuse start every variance scales with
     ``c``, so ``c_hat = mean(v**2 / F*)`` where ``F*`` is computed at ``c = 1``.
@@ -397,7 +404,7 @@ def _fit_diffuse(y, h, valid, h_bar, start: LocalLevelParams | None):
         return -ll if np.isfinite(ll) else math.inf
 
     bracket = None
-    if start is not None and start.q > 0 and start.c > 0:
+    if start is not None and start.q > 0 and start.c > 0:  # q = 0 has no log: use the grid
         x0 = min(max(math.log(start.q / (start.c * h_bar)), lo), hi)
         a, b = max(x0 - _WARM_HALF_WIDTH, lo), min(x0 + _WARM_HALF_WIDTH, hi)
         f0 = neg(x0)
@@ -411,10 +418,13 @@ def _fit_diffuse(y, h, valid, h_bar, start: LocalLevelParams | None):
         bracket = (float(grid[max(k - 1, 0)]), float(grid[min(k + 1, grid.size - 1)]))
     res = minimize_scalar(neg, bounds=bracket, method="bounded",
                           options={"xatol": 1e-9, "maxiter": 500})
-    ll, c_hat = _profile(float(res.x), y, h, valid, h_bar)
-    q = math.exp(float(res.x)) * h_bar * c_hat
+    x = float(res.x)
+    # a likelihood flat down to the floor means q = 0 (constant premium) is the estimate
+    at_floor = neg(lo) <= float(res.fun) + _FLAT_LOGLIK
+    ll, c_hat = _profile(lo if at_floor else x, y, h, valid, h_bar)
+    q = 0.0 if at_floor else math.exp(x) * h_bar * c_hat
     return LocalLevelParams(q=q, c=c_hat), ll, bool(res.success), str(res.message), n_eval, \
-        float(res.x) <= lo + 1e-2
+        at_floor
 
 
 def _fit_prior(y, h, valid, h_bar, prior: FilterState, start: LocalLevelParams):
@@ -431,14 +441,18 @@ def _fit_prior(y, h, valid, h_bar, prior: FilterState, start: LocalLevelParams):
         # per-observation scale keeps the gradient tolerance meaningful for any T
         return -total / max(int(valid.sum()), 1) if np.isfinite(total) else 1e300
 
-    x0 = np.array([min(max(math.log(start.q / h_bar), _LOG_SNR_BOUNDS[0]), _LOG_SNR_BOUNDS[1]),
+    lo, hi = _LOG_SNR_BOUNDS
+    x0 = np.array([min(max(math.log(max(start.q / h_bar, math.exp(lo))), lo), hi),
                    math.log(start.c)])
     res = minimize(neg, x0, method="L-BFGS-B", bounds=[_LOG_SNR_BOUNDS, _LOG_C_BOUNDS],
                    options={"ftol": 1e-15, "gtol": 1e-9, "maxiter": 500})
-    params = LocalLevelParams(q=math.exp(res.x[0]) * h_bar, c=math.exp(res.x[1]))
-    ll = -float(res.fun) * int(valid.sum())
-    return params, ll, bool(res.success), str(res.message), n_eval, \
-        res.x[0] <= _LOG_SNR_BOUNDS[0] + 1e-2
+    n_valid = int(valid.sum())
+    at_floor = neg(np.array([_LOG_SNR_BOUNDS[0], res.x[1]])) * n_valid <= \
+        float(res.fun) * n_valid + _FLAT_LOGLIK
+    params = LocalLevelParams(q=0.0 if at_floor else math.exp(res.x[0]) * h_bar,
+                              c=math.exp(res.x[1]))
+    return params, -float(res.fun) * n_valid, bool(res.success), str(res.message), n_eval, \
+        at_floor
 
 
 def fit_local_level(y, h, prior: FilterState | None = None,
@@ -479,7 +493,7 @@ def fit_local_level(y, h, prior: FilterState | None = None,
         if prior is None or prior.diffuse:
             params, ll, ok, msg, n_eval, at_floor = _fit_diffuse(y, h, valid, h_bar, start)
         else:
-            if start is None or not (start.q > 0 and start.c > 0):
+            if start is None or not (start.q >= 0 and start.c > 0):
                 start = _fit_diffuse(y, h, valid, h_bar, None)[0]
             params, ll, ok, msg, n_eval, at_floor = _fit_prior(y, h, valid, h_bar, prior, start)
     except (ValueError, FloatingPointError, OverflowError) as exc:
@@ -490,6 +504,7 @@ def fit_local_level(y, h, prior: FilterState | None = None,
         return _failed_fit("not_converged", f"Optimizer stopped: {msg}", n_eval)
     message = "Estimated by maximum likelihood."
     if at_floor:
-        message += " q is at its lower bound: the premium is estimated as constant."
+        message += " q = 0: the likelihood is flat down to its floor, so the premium is " \
+                   "estimated as constant."
     flt = filter_local_level(params, y, h, state=prior)
     return LocalLevelFit(params, flt.loglik, True, "ok", message, n_eval, flt)

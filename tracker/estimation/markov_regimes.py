@@ -500,6 +500,9 @@ class BestOfFit:
         llf after BFGS for each polished start.
     message : str
         Optimizer outcome of the kept start, or why nothing was kept.
+    admissible : bool
+        False when every polished result failed the ``admissible`` test and the best
+        inadmissible one was kept.
     """
 
     params: np.ndarray | None
@@ -508,6 +511,7 @@ class BestOfFit:
     start_llfs: tuple
     polished_llfs: tuple
     message: str
+    admissible: bool = True
 
 
 def _optimizer_converged(retvals, gtol_fallback):
@@ -534,6 +538,7 @@ def fit_best_of(
     n_polish: int | None = None,
     maxiter: int = 200,
     gtol_fallback: float = 1e-4,
+    admissible=None,
 ) -> BestOfFit:
     """Multi-start maximum likelihood for any statsmodels Markov-switching model.
 
@@ -552,6 +557,10 @@ def fit_best_of(
     starts : sequence of (ndarray or None)
     rng : numpy.random.Generator
         Seeded; consumed in order, so results replay exactly.
+    admissible : callable, optional
+        ``admissible(params) -> bool``. Inadmissible optima (for example a regime whose
+        variance collapsed onto a few identical values, where the likelihood is
+        unbounded) lose to any admissible one whatever their likelihood.
     """
     start_llfs, screened = [], []
     for s in starts:
@@ -572,7 +581,7 @@ def fit_best_of(
     ranked = [i for i in np.argsort(start_llfs)[::-1] if screened[i] is not None]
     if not ranked:
         return BestOfFit(None, np.nan, False, tuple(start_llfs), (), "every start failed")
-    best = None
+    best, best_bad = None, None
     polished = []
     for i in ranked[: len(ranked) if n_polish is None else max(1, n_polish)]:
         try:
@@ -588,12 +597,19 @@ def fit_best_of(
         except Exception as exc:
             cand = (-np.inf, None, False, f"optimizer failed: {exc}")
         polished.append(cand[0])
-        if cand[1] is not None and np.isfinite(cand[0]) and (best is None or cand[0] > best[0]):
-            best = cand
+        if cand[1] is None or not np.isfinite(cand[0]):
+            continue
+        if admissible is None or admissible(cand[1]):
+            if best is None or cand[0] > best[0]:
+                best = cand
+        elif best_bad is None or cand[0] > best_bad[0]:
+            best_bad = cand
+    ok = best is not None
+    best = best if ok else best_bad
     if best is None:
         return BestOfFit(None, np.nan, False, tuple(start_llfs), tuple(polished),
                          "the optimizer failed from every polished start")
-    return BestOfFit(best[1], best[0], best[2], tuple(start_llfs), tuple(polished), best[3])
+    return BestOfFit(best[1], best[0], best[2], tuple(start_llfs), tuple(polished), best[3], ok)
 
 
 # ----------------------------------------------------------------------------
@@ -639,16 +655,19 @@ def order_regimes(vol_key, mean_key, distance=None, tie_ratio: float = 1.05):
     order = list(base)
     if distance is not None:
         distance = np.asarray(distance, float)
-        for g in groups:
-            if len(g) < 2:
-                continue
-            members = [base[pos] for pos in g]
+    for g in groups:
+        if len(g) < 2:
+            continue
+        members = [base[pos] for pos in g]
+        if distance is None:
+            best = sorted(members, key=lambda raw: (-mean_key[raw], vol_key[raw]))
+        else:
             best = min(
                 itertools.permutations(members),
                 key=lambda perm: sum(distance[raw, pos] for raw, pos in zip(perm, g)),
             )
-            for raw, pos in zip(best, g):
-                order[pos] = raw
+        for raw, pos in zip(best, g):
+            order[pos] = raw
     match = None
     if distance is not None:
         d = distance[order]
@@ -784,9 +803,15 @@ class MarkovRegimeModel:
         model = MarkovRegression(y_pct, k_regimes=k, trend="c", switching_variance=True)
         rng = np.random.default_rng(self.seed)
         starts = self._starts(model, y_pct, rng, previous)
+        floor_pct = self.min_variance_ratio * float(np.var(y_pct))
+
+        def admissible(p):
+            return bool(np.all(regime_moments(model, p)[1] >= floor_pct))
+
         best = fit_best_of(model, starts, rng, search_reps=self.search_reps,
                            search_iter=self.search_iter, em_iter=self.em_iter,
-                           n_polish=self.n_polish, maxiter=self.maxiter)
+                           n_polish=self.n_polish, maxiter=self.maxiter,
+                           admissible=admissible)
         unit_shift = t_len * math.log(PERCENT)  # log f_decimal = log f_percent + log(100)
         start_lls = tuple(ll + unit_shift if np.isfinite(ll) else ll for ll in best.start_llfs)
         common = dict(n_starts=len(starts), start_logliks=start_lls)
@@ -804,15 +829,16 @@ class MarkovRegimeModel:
         params = RegimeParams(k, means_pct[o] / PERCENT, var_pct[o] / PERCENT**2,
                               trans[np.ix_(o, o)])
 
+        # A collapsed variance explains a failed optimisation better than the optimizer
+        # status does (the likelihood is unbounded there), so it is checked first.
+        problem = self._identification_problem(y, params)
+        if problem is not None:
+            return self._failure("unidentified", problem, t_len, **common)
         if not best.converged:
             return self._failure(
                 "not_converged",
                 f"{best.message}; best log-likelihood {best.llf + unit_shift:.2f} "
-                f"after {self.maxiter} iterations", t_len, **common)
-
-        problem = self._identification_problem(y, params)
-        if problem is not None:
-            return self._failure("unidentified", problem, t_len, **common)
+                f"(iteration limit {self.maxiter})", t_len, **common)
         filt = hamilton_filter(y, params)
         share = filt.filtered.mean(axis=0)
         problem = self._weight_problem(share, t_len, filt.loglik, y)
