@@ -15,7 +15,7 @@ CREATE TABLE asset_returns(asset_id VARCHAR, date DATE, ret DOUBLE NOT NULL, dro
 
 CREATE TABLE assets(asset_id VARCHAR PRIMARY KEY, "label" VARCHAR NOT NULL, description VARCHAR DEFAULT('') NOT NULL, frequency VARCHAR NOT NULL, start_date DATE, declared_by BIGINT, declared_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, CHECK((frequency IN ('daily', 'monthly'))));
 
-CREATE TABLE drop_files(drop_id BIGINT PRIMARY KEY, sha256 VARCHAR NOT NULL, file_name VARCHAR NOT NULL, size_bytes BIGINT NOT NULL, outcome VARCHAR NOT NULL, reason VARCHAR, rows_json VARCHAR DEFAULT('{}') NOT NULL, n_revisions INTEGER DEFAULT(0) NOT NULL, warnings_json VARCHAR DEFAULT('[]') NOT NULL, received_at TIMESTAMP NOT NULL, processed_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, CHECK((outcome IN ('applied', 'rejected', 'duplicate'))));
+CREATE TABLE drop_files(drop_id BIGINT PRIMARY KEY, sha256 VARCHAR NOT NULL, file_name VARCHAR NOT NULL, size_bytes BIGINT NOT NULL, outcome VARCHAR NOT NULL, reason VARCHAR, rows_json VARCHAR DEFAULT('{}') NOT NULL, n_revisions INTEGER DEFAULT(0) NOT NULL, warnings_json VARCHAR DEFAULT('[]') NOT NULL, received_at TIMESTAMP NOT NULL, processed_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, claim_token VARCHAR, CHECK((outcome IN ('applied', 'rejected', 'duplicate'))));
 
 CREATE TABLE estimation_runs(run_id BIGINT PRIMARY KEY, kind VARCHAR NOT NULL, reason VARCHAR DEFAULT('') NOT NULL, subjects VARCHAR DEFAULT('') NOT NULL, from_date DATE, through_date DATE, started_at TIMESTAMP NOT NULL, finished_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, status VARCHAR DEFAULT('ok') NOT NULL, message VARCHAR DEFAULT('') NOT NULL);
 

@@ -29,3 +29,22 @@ def demo_store(demo_store_template, tmp_path):
 @pytest.fixture()
 def empty_store(tmp_path):
     return open_store(tmp_path / "empty" / "store.duckdb", create_demo=False)
+
+
+@pytest.fixture(scope="session")
+def estimated_demo_template(tmp_path_factory, demo_store_template) -> Path:
+    """The demo store after the initial estimation (about a minute on two cores)."""
+    from tracker.service.estimate import update
+
+    folder = tmp_path_factory.mktemp("estimated-template")
+    shutil.copytree(demo_store_template.parent, folder, dirs_exist_ok=True)
+    store, config = open_store(folder / "store.duckdb")
+    update(store, config)
+    return store.path
+
+
+@pytest.fixture()
+def estimated_demo_store(estimated_demo_template, tmp_path):
+    target = tmp_path / "estimated"
+    shutil.copytree(estimated_demo_template.parent, target)
+    return open_store(target / "store.duckdb")

@@ -49,6 +49,8 @@ class ModelSettings:
     market_states_max: int = 4
     market_seeds: int = 3
     seed: int = 20261202
+    premium_drift_floor: float = 0.05  # prior floor on premium drift: annual Sharpe-ratio units per
+                                       # sqrt(year); the likelihood alone cannot see slow drift
     min_obs: int = 120              # fewer observations: 'too little data', no numbers
     refit_every_days: int = 63      # scheduled refit after this many new rows (the DRIFT warning,
                                     # see [warnings] drift_z, also triggers one)
@@ -73,6 +75,7 @@ _RANGES: dict[tuple[str, str], tuple[float, float]] = {
     ("models", "ewma_decay_daily"): (0.5, 0.9999),
     ("models", "ewma_decay_monthly"): (0.5, 0.9999),
     ("models", "market_states_min"): (1, 6),
+    ("models", "premium_drift_floor"): (0.0, 1.0),
     ("models", "market_states_max"): (1, 6),
 }
 

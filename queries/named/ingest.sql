@@ -46,10 +46,10 @@ DELETE FROM {table};
 -- name: applied_by_sha
 SELECT drop_id FROM drop_files WHERE sha256 = ? AND outcome = 'applied' ORDER BY drop_id LIMIT 1;
 
--- name: drop_by_claim
+-- name: drop_by_claim_token
 SELECT drop_id, outcome, reason, rows_json, n_revisions, warnings_json, sha256, file_name,
        size_bytes, received_at, processed_at
-FROM drop_files WHERE claim_name = ?;
+FROM drop_files WHERE claim_token = ?;
 
 -- name: declared_factors
 SELECT factor_id, label, description, frequency, is_traded, is_new, start_date FROM factors;
@@ -58,14 +58,14 @@ SELECT factor_id, label, description, frequency, is_traded, is_new, start_date F
 SELECT asset_id, label, description, frequency, start_date FROM assets;
 
 -- name: trailing_factor_sd
--- Sample sd and count of the last 63 stored returns of each factor in incoming_frame(id).
+-- Sample sd and count of the last ? (TRAILING_ROWS) stored returns of each factor in incoming_frame(id).
 SELECT factor_id AS id, stddev_samp(ret) AS sd, count(*) AS n
 FROM (
     SELECT r.factor_id, r.ret,
            row_number() OVER (PARTITION BY r.factor_id ORDER BY r.date DESC) AS k
     FROM factor_returns r SEMI JOIN incoming_frame i ON r.factor_id = i.id
 )
-WHERE k <= 63
+WHERE k <= ?
 GROUP BY factor_id;
 
 -- name: trailing_asset_sd
@@ -75,7 +75,7 @@ FROM (
            row_number() OVER (PARTITION BY r.asset_id ORDER BY r.date DESC) AS k
     FROM asset_returns r SEMI JOIN incoming_frame i ON r.asset_id = i.id
 )
-WHERE k <= 63
+WHERE k <= ?
 GROUP BY asset_id;
 
 -- name: stored_months_factor
@@ -112,7 +112,7 @@ SELECT nextval('seq_drop_id');
 
 -- name: insert_drop_file
 INSERT INTO drop_files (drop_id, sha256, file_name, size_bytes, outcome, reason, rows_json,
-                        n_revisions, warnings_json, received_at, claim_name)
+                        n_revisions, warnings_json, received_at, claim_token)
 VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?);
 
 -- name: insert_factors

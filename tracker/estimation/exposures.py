@@ -521,19 +521,23 @@ def _direct_cells(xw, yw, mw, lag_w, weights, max_condition):
     return coef, cov, ssr, sst, ok
 
 def _solve_equilibrated(
-    xtx: np.ndarray, xty: np.ndarray, max_condition: float
+    xtx: np.ndarray, xty: np.ndarray, max_condition: float, *, shared: bool = False
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Solve stacked normal equations after scaling to unit diagonal.
 
     Parameters
     ----------
-    xtx : ndarray (n, p, p); xty : ndarray (n, p); max_condition : float
+    xtx : ndarray (n, p, p), or (1, p, p) with ``shared`` (one X'X for all)
+    xty : ndarray (n, p)
+    max_condition : float
 
     Returns
     -------
     coef : ndarray (n, p); inverse of X'X : ndarray (n, p, p);
     ok : bool ndarray (n,), False where the scaled matrix is too ill-conditioned.
+    Unidentified rows carry zeros so that later algebra stays finite.
     """
+    n, p = xty.shape
     diag = np.diagonal(xtx, axis1=1, axis2=2)
     ok = np.all(diag > 0, axis=1)
     d = 1.0 / np.sqrt(np.where(diag > 0, diag, 1.0))
@@ -542,17 +546,14 @@ def _solve_equilibrated(
     if ok.any():
         cond[ok] = np.linalg.cond(scaled[ok])
     ok &= np.isfinite(cond) & (cond <= max_condition)
-    n, p = xty.shape
-    inv = np.full((n, p, p), np.nan)
-    coef = np.full((n, p), np.nan)
+    inv = np.zeros(xtx.shape)
     if ok.any():
-        s_inv = np.linalg.inv(scaled[ok])
-        inv[ok] = s_inv * d[ok][:, :, None] * d[ok][:, None, :]
-        coef[ok] = np.einsum("nab,nb->na", inv[ok], xty[ok])
-    # Unidentified cells carry zeros so the shared residual algebra stays finite.
-    coef_safe = np.where(ok[:, None], coef, 0.0)
-    inv_safe = np.where(ok[:, None, None], inv, 0.0)
-    return coef_safe, inv_safe, ok
+        inv[ok] = np.linalg.inv(scaled[ok]) * d[ok][:, :, None] * d[ok][:, None, :]
+    if shared:
+        inv = np.broadcast_to(inv, (n, p, p))
+        ok = np.broadcast_to(ok, (n,)).copy()
+    coef = np.einsum("nab,nb->na", inv, xty)
+    return coef, inv, ok
 
 
 # --------------------------------------------------------------------------- #

@@ -534,7 +534,7 @@ def fit_best_of(
     *,
     search_reps: int = 4,
     search_iter: int = 5,
-    em_iter: int = 5,
+    em_iter: int = 20,
     n_polish: int | None = None,
     maxiter: int = 200,
     gtol_fallback: float = 1e-4,
@@ -723,7 +723,7 @@ class MarkovRegimeModel:
     """
 
     def __init__(self, k_regimes: int = 2, *, n_starts: int = 3, search_reps: int = 4,
-                 search_iter: int = 5, em_iter: int = 5, n_polish: int | None = None,
+                 search_iter: int = 5, em_iter: int = 20, n_polish: int | None = None,
                  maxiter: int = 200, seed: int = 0, min_obs: int | None = None,
                  min_regime_share: float = 0.01, min_regime_obs: float = 10.0,
                  min_variance_ratio: float = 1e-4, require_bic_gain: bool = True,

@@ -94,10 +94,14 @@ class Outcome:
     ``outcome`` is 'applied', 'rejected' or 'duplicate'. ``rows`` holds per-table counts
     for the five drop tables; ``rows_written`` (inserted + revised) is what
     ``drop_files.rows_json`` stores. ``changes`` lists the series an applied file changed;
-    ``declared`` the ids it newly declared ('factor:ID' / 'asset:ID'). ``data_version`` is
+    ``declared`` the ids it newly declared ('factor:ID' / 'asset:ID');
+    ``revision_details`` the first 100 revisions (table, series_id, date, old, new). ``data_version`` is
     the store's change marker after the transaction (see :mod:`tracker.ingest.apply`).
     ``stored_as`` and ``receipt`` are the file's final path in ``applied/`` or
-    ``rejected/`` and its receipt beside it.
+    ``rejected/`` and its receipt beside it. ``recovered`` is True when the outcome was
+    committed by a process that died before moving the file, and this pass only
+    finished the move: its ``rows`` hold only rows written (as ``inserted``), and
+    ``changes`` is empty, so a consumer should re-read the store.
     """
 
     outcome: str
@@ -115,9 +119,11 @@ class Outcome:
     changes: tuple[SeriesChange, ...] = ()
     declared: tuple[str, ...] = ()
     duplicate_of: int | None = None
+    revision_details: tuple[dict[str, Any], ...] = ()
     data_version: int | None = None
     stored_as: Path | None = None
     receipt: Path | None = None
+    recovered: bool = False
 
     @property
     def rows_written(self) -> dict[str, int]:

@@ -115,7 +115,7 @@ class _Pieces:
 def open_sandbox() -> duckdb.DuckDBPyConnection:
     """A fresh in-memory DuckDB holding only the five staging tables, locked down."""
     con = duckdb.connect(":memory:", config=dict(SANDBOX_CONFIG))
-    con.execute(sql("ingest.sandbox_schema"))
+    con.execute(sql("ingest.sandbox_schema")).fetchall()
     return con
 
 
@@ -290,10 +290,10 @@ def _execute_rows(con, text: str, sc: Scan, st: Statement, out: _Pieces) -> None
         try:
             _execute_text(con, head + "\n" + ",\n".join(text[r.start:r.end] for r in chunk))
         except duckdb.Error as err:
-            con.execute(clear)
+            con.execute(clear).fetchall()
             _pinpoint(con, text, head, clear, st, chunk, err)
         res = con.execute(fetch).fetchnumpy()
-        con.execute(clear)
+        con.execute(clear).fetchall()
         if len(next(iter(res.values()))) != len(chunk):
             raise Rejected(Rejection("sandbox_error", "the sandbox staged a different number of rows than "
                                      "the statement holds", st.number, chunk[0].line))
@@ -305,7 +305,7 @@ def _execute_text(con, statement_text: str) -> None:
     parsed = duckdb.extract_statements(statement_text)
     if len(parsed) != 1 or parsed[0].type != duckdb.StatementType.INSERT:
         raise duckdb.ParserException("a row does not parse as part of one INSERT statement")
-    con.execute(parsed[0])
+    con.execute(parsed[0]).fetchall()
 
 
 def _pinpoint(con, text, head, clear, st: Statement, chunk, err: Exception) -> None:
@@ -322,7 +322,7 @@ def _pinpoint(con, text, head, clear, st: Statement, chunk, err: Exception) -> N
             raise Rejected(Rejection(rule, _parser_message(row_err).replace(" (DuckDB's parser)", "")
                                      + " (DuckDB, evaluating the row in the sandbox)", st.number, r.line)) from None
         finally:
-            con.execute(clear)
+            con.execute(clear).fetchall()
     raise Rejected(Rejection("bad_value", _parser_message(err), st.number, chunk[0].line))
 
 

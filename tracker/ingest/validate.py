@@ -122,41 +122,31 @@ class Checked:
     n_warnings: int = 0
 
 
-@dataclass
-class _Fault:
-    rule: str
-    table: str
-    index: int              # position in the staged table
-    message: str
-
-
-def _first_fault(staged: Staged, faults: list[tuple[str, StagedTable, np.ndarray, object]]) -> None:
+def _first_fault(staged: Staged, faults: list) -> None:
     """Raise for the earliest row (in file order) that any rule flags.
 
     ``faults`` holds (rule, staged table, boolean mask, message maker(i) -> str).
     """
-    best: tuple[int, int, str, StagedTable, int, object] | None = None
-    bad_rows: set[tuple[int, int]] = set()
+    best = None
+    keys = []
     for rule, st, mask, make in faults:
         idx = np.flatnonzero(mask)
         if not len(idx):
             continue
-        order = np.lexsort((st.row[idx], st.statement[idx]))
-        first = int(idx[order[0]])
-        key = (int(st.statement[first]), int(st.row[first]))
-        if len(idx) < 10_000:
-            bad_rows.update(zip(st.statement[idx].tolist(), st.row[idx].tolist()))
-        else:
-            bad_rows.update((int(s) + 10**9, i) for i, s in enumerate(st.statement[idx]))
-        if best is None or key < best[:2]:
-            best = (key[0], key[1], rule, st, first, make)
+        row_keys = (st.statement[idx].astype(np.int64) << 40) + st.row[idx]
+        keys.append(row_keys)
+        j = int(np.argmin(row_keys))
+        cand = (int(row_keys[j]), rule, st, int(idx[j]), make)
+        if best is None or cand[0] < best[0]:
+            best = cand
     if best is None:
         return
-    statement, row, rule, st, first, make = best
-    message = make(first)  # type: ignore[operator]
-    others = len(bad_rows) - 1
+    _, rule, st, first, make = best
+    message = make(first)
+    others = len(np.unique(np.concatenate(keys))) - 1
     if others > 0:
         message += f"; {others} more row(s) break rules"
+    statement, row = int(st.statement[first]), int(st.row[first])
     raise Invalid(Rejection(rule, message, statement, staged.line(statement, row)))
 
 
@@ -361,12 +351,11 @@ def check_returns(
         faults.append(("too_large", st, big, lambda i, who=who, vals=vals, vc=vc: (
             f"{vc} {vals[i]:g} of {who(i)}: abs value at or above reject_abs_return = "
             f"{settings.reject_abs_return:g} (values are decimals: 0.01 is 1 %)")))
-        key = pd.DataFrame({"c": codes, "d": dates.view("int64")})
-        dup = key.duplicated(keep="first").to_numpy(bool) & ~null_any
-        first_at = _first_occurrence(key)
-        faults.append(("duplicate_key", st, dup, lambda i, who=who, f=first_at, st=st: (
+        key = (codes.astype(np.int64) << 32) + (dates.view("int64") + 2**31)
+        dup = _later_duplicates(key) & ~null_any
+        faults.append(("duplicate_key", st, dup, lambda i, who=who, key=key, st=st: (
             f"{who(i)} appears more than once in the file (first at line "
-            f"{staged.line(st.statement[f[i]], st.row[f[i]])})")))
+            f"{_line_of(staged, st, int(np.flatnonzero(key == key[i])[0]))})")))
         rows[name] = ReturnRows(t, ids, dates, vals, st.statement, st.row)
         freq_row = np.where(codes >= 0, freq_u[np.maximum(codes, 0)] if len(uniq) else "daily", "daily")
         warn_parts.extend(_frequency_warnings(name, st, ids, dates, codes, freq_row, stored_months.get(name), who))
@@ -388,11 +377,17 @@ def _lookup(per_unique: np.ndarray, codes: np.ndarray, fill) -> np.ndarray:
     return np.where(codes >= 0, per_unique[np.maximum(codes, 0)], fill)
 
 
-def _first_occurrence(key: pd.DataFrame) -> np.ndarray:
-    """For each row, the position of the first row with the same key."""
-    grp = key.groupby(["c", "d"], sort=False).ngroup().to_numpy()
-    first = pd.Series(np.arange(len(key))).groupby(grp).transform("min").to_numpy()
-    return first
+def _later_duplicates(key: np.ndarray) -> np.ndarray:
+    """True for every row whose key already appeared earlier in the array."""
+    order = np.argsort(key, kind="stable")
+    sk = key[order]
+    later = np.zeros(len(key), dtype=bool)
+    later[order[1:]] = sk[1:] == sk[:-1]
+    return later
+
+
+def _line_of(staged: Staged, st: StagedTable, i: int) -> int:
+    return staged.line(int(st.statement[i]), int(st.row[i]))
 
 
 def _frequency_warnings(name, st, ids, dates, codes, freq_row, stored, who):

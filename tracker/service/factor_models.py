@@ -145,6 +145,28 @@ def _vol_filter(params: dict, y: np.ndarray, state: dict | None):
     return ewma_variance(y, EwmaParams.from_dict({k: v for k, v in params.items() if k != "kind"}), st)
 
 
+def drift_floor_q(returns: np.ndarray, frequency: str, drift: float) -> float:
+    """Smallest premium-step variance q allowed, from a stated prior on premium drift.
+
+    With ``drift`` the standard deviation per year of the premium's annual Sharpe ratio,
+    the per-period premium step has sd ``drift * sd(f) / ppy`` (mu = SR sd(f) / sqrt(ppy)
+    and SR moves by ``drift / sqrt(ppy)`` per period). Real premia drift too slowly for
+    the likelihood to tell q from zero on any realistic sample; a q of exactly zero makes
+    the band shrink like 1/sqrt(T) around a constant and overstates what is known.
+    """
+    x = returns[np.isfinite(returns)]
+    if x.size < 2 or drift <= 0:
+        return 0.0
+    ppy = PERIODS_PER_YEAR[frequency]
+    return float((drift * np.std(x, ddof=1) / ppy) ** 2)
+
+
+def _apply_floor(fit_params: dict, q_floor: float) -> tuple[dict, bool]:
+    if fit_params and fit_params.get("q") is not None and fit_params["q"] < q_floor:
+        return {**fit_params, "q": q_floor}, True
+    return fit_params, False
+
+
 def run_factor(task: FactorTask) -> FactorOutput:
     """Fit (if asked) and filter one factor; never raises on bad data."""
     y = np.asarray(task.returns, dtype=float)
@@ -170,11 +192,17 @@ def run_factor(task: FactorTask) -> FactorOutput:
     prev_ll = LocalLevelParams.from_dict(params[MODEL_PREMIUM]) if params.get(MODEL_PREMIUM) else None
     if task.refit or prev_ll is None:
         fit = fit_local_level(y, h, start=prev_ll, min_obs=s["min_obs"])
-        fits.append(FitRecord(MODEL_PREMIUM, fit.status, fit.message,
-                              fit.params.to_dict() if fit.status == "ok" else {},
+        q_floor = drift_floor_q(y, task.frequency, s.get("premium_drift_floor", 0.0))
+        fitted, floored = _apply_floor(fit.params.to_dict() if fit.status == "ok" else {}, q_floor)
+        msg = fit.message
+        if floored:
+            msg += (f" The estimated q is below the stated drift floor ({q_floor:.3g}, from "
+                    f"premium_drift_floor = {s.get('premium_drift_floor')}); the floor is used.")
+            fitted["q_mle"] = fit.params.q
+        fits.append(FitRecord(MODEL_PREMIUM, fit.status, msg, fitted,
                               _finite_or_nan(fit.loglik), int(np.isfinite(y).sum()), fit.converged))
-        params[MODEL_PREMIUM] = fit.params.to_dict() if fit.status == "ok" else {}
-        status[MODEL_PREMIUM], message[MODEL_PREMIUM] = fit.status, fit.message
+        params[MODEL_PREMIUM] = fitted
+        status[MODEL_PREMIUM], message[MODEL_PREMIUM] = fit.status, msg
     ll_params = LocalLevelParams.from_dict(params[MODEL_PREMIUM]) if params.get(MODEL_PREMIUM) else None
     if ll_params is not None:
         st = FilterState.from_dict(states[MODEL_PREMIUM]) if states.get(MODEL_PREMIUM) else None
@@ -216,10 +244,12 @@ def run_factor(task: FactorTask) -> FactorOutput:
     prev_kp = KimParams.from_dict(params[MODEL_REGIME_PREMIUM]) if params.get(MODEL_REGIME_PREMIUM) else None
     if rp is not None and (task.refit or prev_kp is None):
         kfit = fit_kim(y, h, np.asarray(rp.transition), start=prev_kp, min_obs=s["min_obs"])
-        fits.append(FitRecord(MODEL_REGIME_PREMIUM, kfit.status, kfit.message,
-                              kfit.params.to_dict() if kfit.status == "ok" and kfit.params else {},
+        q_floor = drift_floor_q(y, task.frequency, s.get("premium_drift_floor", 0.0))
+        kfitted, floored = _apply_floor(kfit.params.to_dict() if kfit.status == "ok" and kfit.params else {}, q_floor)
+        kmsg = kfit.message + (" q raised to the stated drift floor." if floored else "")
+        fits.append(FitRecord(MODEL_REGIME_PREMIUM, kfit.status, kmsg, kfitted,
                               _finite_or_nan(kfit.loglik), int(np.isfinite(y).sum()), bool(kfit.converged)))
-        params[MODEL_REGIME_PREMIUM] = kfit.params.to_dict() if kfit.status == "ok" and kfit.params else {}
+        params[MODEL_REGIME_PREMIUM] = kfitted
         status[MODEL_REGIME_PREMIUM], message[MODEL_REGIME_PREMIUM] = kfit.status, kfit.message
     elif rp is None and task.refit:
         params[MODEL_REGIME_PREMIUM] = {}

@@ -130,9 +130,11 @@ def latest_warnings(out: FactorOutput, ctx: LatestContext, th: wr.WarningThresho
         premium_drop_last=None if drop_last is None else float(drop_last),
         premium_q_half=q_half,
         premium_q_double=q_double,
-        filtered_path=full_premium,
-        smoothed_path=smoothed,
-        filtered_sd_path=sd,
+        # the hindsight gap is judged over the last year: the first rows after a diffuse
+        # start always differ from hindsight and say nothing about today's estimate
+        filtered_path=full_premium[-ppy:],
+        smoothed_path=None if smoothed is None else smoothed[-ppy:],
+        filtered_sd_path=sd[-ppy:],
         sharpe_annual=float(full_premium[last] / vol * math.sqrt(ppy)) if vol and vol > 0 else None,
         history_years=float(finite.sum() / ppy),
         regime_probabilities=probs,
