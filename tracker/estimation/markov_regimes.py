@@ -701,8 +701,13 @@ class MarkovRegimeModel:
     k_regimes : int
         2 (default) or 3.
     n_starts : int
-        Starting points screened: statsmodels' default start, the previous fit's
-        parameters when given, then seeded random starts.
+        Starting points of a cold fit: statsmodels' default start, then seeded random
+        starts.
+    warm_starts : int
+        Starting points of a warm refit (``fit(..., previous=p)``): the previous
+        parameters first, then the cold-fit starts. Default 1: a refit trusts the
+        previous optimum's basin (searched around with ``search_reps``); use
+        ``warm_start=False`` now and then for a full multi-start refit.
     search_reps, search_iter, em_iter, n_polish, maxiter : int
         See :func:`fit_best_of`.
     seed : int
@@ -722,7 +727,8 @@ class MarkovRegimeModel:
         See :func:`order_regimes`.
     """
 
-    def __init__(self, k_regimes: int = 2, *, n_starts: int = 3, search_reps: int = 4,
+    def __init__(self, k_regimes: int = 2, *, n_starts: int = 3, warm_starts: int = 1,
+                 search_reps: int = 4,
                  search_iter: int = 5, em_iter: int = 20, n_polish: int | None = None,
                  maxiter: int = 200, seed: int = 0, min_obs: int | None = None,
                  min_regime_share: float = 0.01, min_regime_obs: float = 10.0,
@@ -734,6 +740,7 @@ class MarkovRegimeModel:
             raise ValueError("n_starts and n_polish must be at least 1")
         self.k_regimes = int(k_regimes)
         self.n_starts = int(n_starts)
+        self.warm_starts = max(1, int(warm_starts))
         self.search_reps = int(search_reps)
         self.search_iter = int(search_iter)
         self.em_iter = int(em_iter)
@@ -760,24 +767,26 @@ class MarkovRegimeModel:
         return RegimeFit(status, message, k, n_obs, RegimeParams.nan(k),
                          durations=np.full(k, np.nan), regime_share=np.full(k, np.nan), **extra)
 
-    def _starts(self, model, y_pct, rng, previous):
+    def _starts(self, model, y_pct, rng, warm):
         k = self.k_regimes
-        starts = [None]
-        if previous is not None and previous.k_regimes == k and np.all(np.isfinite(previous.means)):
-            starts.append(regression_param_vector(
-                model, previous.means * PERCENT, previous.variances * PERCENT**2,
-                previous.transition))
+        starts, wanted = [None], self.n_starts
+        if warm is not None:
+            starts = [regression_param_vector(
+                model, warm.means * PERCENT, warm.variances * PERCENT**2, warm.transition),
+                None]
+            wanted = self.warm_starts
         var, mean, sd = float(np.var(y_pct)), float(np.mean(y_pct)), float(np.std(y_pct))
-        while len(starts) < self.n_starts:
+        while len(starts) < wanted:
             variances = var * np.sort(np.exp(rng.uniform(math.log(0.2), math.log(3.0), k)))
             means = mean + 0.1 * sd * rng.standard_normal(k)
             stay = rng.uniform(0.85, 0.99, k)
             trans = np.tile(((1 - stay) / (k - 1))[:, None], (1, k))
             np.fill_diagonal(trans, stay)
             starts.append(regression_param_vector(model, means, variances, trans))
-        return starts[: self.n_starts]
+        return starts[:wanted]
 
-    def fit(self, returns, previous: RegimeParams | None = None) -> RegimeFit:
+    def fit(self, returns, previous: RegimeParams | None = None,
+            warm_start: bool = True) -> RegimeFit:
         """Estimate the model on a return series.
 
         Parameters
@@ -785,7 +794,10 @@ class MarkovRegimeModel:
         returns : array_like, shape (T,)
             Decimal returns per period, finite.
         previous : RegimeParams, optional
-            Last fit's parameters: used as a warm start and to keep labels stable.
+            Last fit's parameters: keeps labels stable and, with ``warm_start``, is the
+            first starting point (``warm_starts`` starts instead of ``n_starts``).
+        warm_start : bool
+            False: a cold multi-start fit; ``previous`` is then used only for labels.
         """
         y = np.asarray(returns, float).ravel()
         t_len, k = len(y), self.k_regimes
@@ -802,7 +814,10 @@ class MarkovRegimeModel:
         y_pct = y * PERCENT
         model = MarkovRegression(y_pct, k_regimes=k, trend="c", switching_variance=True)
         rng = np.random.default_rng(self.seed)
-        starts = self._starts(model, y_pct, rng, previous)
+        prev = previous if (previous is not None and previous.k_regimes == k
+                            and np.all(np.isfinite(previous.variances))
+                            and np.all(np.isfinite(previous.means))) else None
+        starts = self._starts(model, y_pct, rng, prev if warm_start else None)
         floor_pct = self.min_variance_ratio * float(np.var(y_pct))
 
         def admissible(p):
@@ -819,8 +834,6 @@ class MarkovRegimeModel:
             return self._failure("failed", best.message, t_len, **common)
 
         means_pct, var_pct, trans = regime_moments(model, best.params)
-        prev = previous if (previous is not None and previous.k_regimes == k
-                            and np.all(np.isfinite(previous.variances))) else None
         dist = None
         if prev is not None:
             dist = regime_distance(means_pct / PERCENT, var_pct / PERCENT**2, prev)

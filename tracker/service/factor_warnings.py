@@ -31,6 +31,9 @@ from tracker.service.factor_models import (
 )
 
 
+HINDSIGHT_ROWS = 21
+
+
 def _row(subject: str, date, w: wr.Warning) -> dict:
     return {
         "subject_id": subject, "date": date, "code": w.code, "severity": w.severity,
@@ -130,11 +133,11 @@ def latest_warnings(out: FactorOutput, ctx: LatestContext, th: wr.WarningThresho
         premium_drop_last=None if drop_last is None else float(drop_last),
         premium_q_half=q_half,
         premium_q_double=q_double,
-        # the hindsight gap is judged over the last year: the first rows after a diffuse
-        # start always differ from hindsight and say nothing about today's estimate
-        filtered_path=full_premium[-ppy:],
-        smoothed_path=None if smoothed is None else smoothed[-ppy:],
-        filtered_sd_path=sd[-ppy:],
+        # the hindsight gap is judged over the last month of real-time estimates: what the
+        # desk saw recently against what the whole sample now says about those dates
+        filtered_path=full_premium[-HINDSIGHT_ROWS:],
+        smoothed_path=None if smoothed is None else smoothed[-HINDSIGHT_ROWS:],
+        filtered_sd_path=sd[-HINDSIGHT_ROWS:],
         sharpe_annual=float(full_premium[last] / vol * math.sqrt(ppy)) if vol and vol > 0 else None,
         history_years=float(finite.sum() / ppy),
         regime_probabilities=probs,

@@ -1,0 +1,2 @@
+-- nothing today
+/* still nothing */

@@ -1,0 +1,1 @@
+INSERT INTO factor_returns DEFAULT VALUES;

@@ -1,0 +1,2 @@
+INSERT INTO factor_returns VALUES ('MKT', DATE '2026-10-30', 0.5)
+ON CONFLICT DO UPDATE SET ret = 0.5;

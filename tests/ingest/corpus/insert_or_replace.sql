@@ -1,0 +1,1 @@
+INSERT OR REPLACE INTO factor_returns VALUES ('MKT', DATE '2026-10-30', 0.5);

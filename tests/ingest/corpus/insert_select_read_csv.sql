@@ -1,0 +1,2 @@
+INSERT INTO factor_returns
+SELECT * FROM read_csv('/etc/passwd');

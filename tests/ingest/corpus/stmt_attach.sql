@@ -1,0 +1,1 @@
+ATTACH '/tmp/tracker-other.duckdb' AS other;

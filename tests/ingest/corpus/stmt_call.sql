@@ -1,0 +1,1 @@
+CALL pragma_version();

@@ -1,0 +1,1 @@
+COPY factor_returns FROM '/etc/passwd';

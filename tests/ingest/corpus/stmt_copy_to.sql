@@ -1,0 +1,1 @@
+COPY factor_returns TO '/tmp/tracker-leak.csv' (HEADER);

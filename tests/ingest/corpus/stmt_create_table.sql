@@ -1,0 +1,1 @@
+CREATE TABLE stolen AS SELECT * FROM factor_returns;

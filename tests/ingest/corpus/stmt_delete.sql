@@ -1,0 +1,2 @@
+-- tries to wipe the history
+DELETE FROM factor_returns;

@@ -1,0 +1,1 @@
+PRAGMA database_list;

@@ -1,0 +1,1 @@
+SET enable_external_access = true;

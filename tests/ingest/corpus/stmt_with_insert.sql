@@ -1,0 +1,2 @@
+WITH x AS (SELECT 'MKT', DATE '2026-11-03', 0.01)
+INSERT INTO factor_returns SELECT * FROM x;

@@ -1,0 +1,3 @@
+INSERT INTO factor_returns VALUES
+('MKT', DATE '2026-11-03', 0.01)
+('MKT', DATE '2026-11-04', 0.02);

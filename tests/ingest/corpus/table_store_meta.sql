@@ -1,0 +1,1 @@
+INSERT INTO store_meta VALUES ('data_version', '0');

@@ -1,0 +1,1 @@
+INSERT INTO factors VALUES (getenv('HOME'), 'x', '', 'daily', TRUE, FALSE, NULL);
