@@ -55,6 +55,22 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("status", help="store path, factor and row counts, date range, last fit, pending drops")
     p.set_defaults(handler=_cmd_status)
 
+    p = sub.add_parser("refit", help="re-estimate model parameters (all factors, or the ones named)")
+    p.add_argument("factors", nargs="*", metavar="FACTOR", help="factor ids (default: all)")
+    p.add_argument("--workers", type=int, default=None, help="worker processes (default: all cores)")
+    p.set_defaults(handler=_cmd_refit)
+
+    p = sub.add_parser("update", help="bring estimates up to date with the stored data (no refit unless due)")
+    p.set_defaults(handler=_cmd_update)
+
+    p = sub.add_parser("ingest", help="apply the inbox's drop files (or the named files) once, then update estimates")
+    p.add_argument("paths", nargs="*", metavar="PATH", help="drop files or folders (default: the inbox)")
+    p.add_argument("--no-estimate", action="store_true", help="apply the data only; estimates catch up later")
+    p.set_defaults(handler=_cmd_ingest)
+
+    p = sub.add_parser("watch", help="process the inbox continuously, headless, updating estimates after each file")
+    p.set_defaults(handler=_cmd_watch)
+
     p = sub.add_parser("export", help="write stored tables as CSV or Parquet files")
     p.add_argument("tables", nargs="*", metavar="TABLE", help="tables to export (default: all readable tables)")
     p.add_argument("--format", choices=("csv", "parquet"), default="csv")
@@ -146,6 +162,89 @@ def _cmd_status(args) -> int:
 
 def _pct(x: float) -> str:
     return f"{x * 100:>6.2f}%" if x == x else f"{'-':>7}"
+
+
+def _progress_printer():
+    import time
+
+    start = time.monotonic()
+
+    def show(done: int, total: int, label: str) -> None:
+        width = 30
+        filled = int(width * done / max(total, 1))
+        bar = "#" * filled + "." * (width - filled)
+        end = "\n" if done >= total else ""
+        print(f"\r[{bar}] {done}/{total} {label:<24} {time.monotonic() - start:6.1f}s", end=end, flush=True,
+              file=sys.stderr)
+
+    return show
+
+
+def _cmd_refit(args) -> int:
+    store, config = _open(args)
+    from tracker.service.estimate import update
+    from tracker.service.executor import LocalProcessExecutor
+
+    known = _factor_ids(store)
+    unknown = [f for f in args.factors if f not in known]
+    if unknown:
+        raise UsageError(f"unknown factor {unknown[0]!r}; known: {', '.join(sorted(known))}")
+    if args.workers is not None and args.workers < 1:
+        raise UsageError("--workers must be at least 1")
+    summary = update(store, config, refit=set(args.factors), progress=_progress_printer(),
+                     executor=LocalProcessExecutor(args.workers))
+    print(summary.describe())
+    return 0 if not summary.skipped else 1
+
+
+def _cmd_update(args) -> int:
+    store, config = _open(args)
+    from tracker.service.estimate import update
+
+    summary = update(store, config, progress=_progress_printer())
+    print(summary.describe())
+    return 0 if not summary.skipped else 1
+
+
+def _cmd_ingest(args) -> int:
+    store, config = _open(args)
+    from tracker.ingest.commands import ingest_command
+
+    paths = [Path(p) for p in args.paths] if args.paths else None
+    code = ingest_command(store, config, paths, print)
+    if not args.no_estimate:
+        from tracker.service.estimate import update
+
+        print(update(store, config).describe())
+    return code
+
+
+def _cmd_watch(args) -> int:
+    import signal
+    import threading
+
+    store, config = _open(args)
+    from tracker.ingest.commands import watch_command
+    from tracker.service.estimate import update
+
+    stop = threading.Event()
+    for sig in (signal.SIGTERM, signal.SIGHUP, signal.SIGINT):
+        signal.signal(sig, lambda *_: stop.set())
+
+    def estimate(_outcome=None) -> None:
+        try:
+            print(update(store, config).describe(), flush=True)
+        except Exception as exc:  # the next applied file or restart catches up
+            print(f"estimation failed, will catch up later: {type(exc).__name__}: {exc}", flush=True)
+
+    estimate()  # catch up with anything applied while nobody was watching
+    return watch_command(store, config, lambda m: print(m, flush=True), stop, on_applied=estimate)
+
+
+def _factor_ids(store) -> set[str]:
+    from tracker.service.status import factor_summary
+
+    return set(factor_summary(store)["factor_id"])
 
 
 def _cmd_export(args) -> int:

@@ -37,7 +37,8 @@ def simulate_market(rng, t_len, n):
     load = rng.uniform(0.7, 1.3, n)
     x = np.empty((t_len, n))
     for k in range(3):
-        cov = TRUE_VOL[k] ** 2 * (TRUE_RHO[k] + (1 - TRUE_RHO[k]) * np.eye(n)) * np.outer(load, load)
+        corr = TRUE_RHO[k] + (1 - TRUE_RHO[k]) * np.eye(n)
+        cov = TRUE_VOL[k] ** 2 * corr * np.outer(load, load)
         idx = s == k
         x[idx] = rng.multivariate_normal(TRUE_MU[k] * load, cov, idx.sum())
     return x, s
@@ -102,8 +103,8 @@ def test_densities_equal_scipy_multivariate_normal():
     x = rng.normal(0, 0.01, (50, 4))
     ld = mvn_logpdf_matrix(x, p.means, p.covars, "full")
     for k in range(2):
-        np.testing.assert_allclose(ld[:, k], multivariate_normal(p.means[k], p.covars[k]).logpdf(x),
-                                   rtol=1e-12)
+        ref = multivariate_normal(p.means[k], p.covars[k]).logpdf(x)
+        np.testing.assert_allclose(ld[:, k], ref, rtol=1e-12)
 
 
 def test_incremental_filter_from_json_state():

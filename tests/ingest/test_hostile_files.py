@@ -57,12 +57,12 @@ def test_hostile_file_gets_its_documented_outcome(corpus_run, name):
     o = outcomes[name]
     assert o.outcome == "rejected"
     assert o.rule == exp["rule"], o.reason
-    if exp["statement"]:
-        assert o.reason.startswith(f"statement {exp['statement']}, ")
+    where = [f"statement {exp['statement']}"] if exp["statement"] else []
+    where += [f"line {exp['line']}"] if exp["line"] else []
+    if where:
+        assert o.reason.startswith(", ".join(where) + ": "), o.reason
     else:
-        assert not o.reason.startswith("statement")
-    if exp["line"]:
-        assert f"line {exp['line']}" in o.reason
+        assert not o.reason.startswith(("statement", "line")), o.reason
     # logged in drop_files with the same reason, moved to rejected/ untouched, receipt beside it
     row = fetch(st, "SELECT outcome, reason, rows_json, n_revisions FROM drop_files WHERE drop_id = ?", [o.drop_id])
     assert row == [("rejected", o.reason, "{}", 0)]

@@ -207,7 +207,8 @@ def mvn_logpdf_matrix(x, means, covars, covariance_type) -> np.ndarray:
     return out
 
 
-def market_filter(x, params: MarketRegimeParams, state: RegimeFilterState | None = None) -> RegimeFiltered:
+def market_filter(x, params: MarketRegimeParams,
+                  state: RegimeFilterState | None = None) -> RegimeFiltered:
     """Filter rows of factor returns at fixed parameters, O(new rows).
 
     Parameters
@@ -398,7 +399,8 @@ class MarketRegimeModel:
         self.init_window = int(init_window)
 
     @staticmethod
-    def filter(x, params: MarketRegimeParams, state: RegimeFilterState | None = None) -> RegimeFiltered:
+    def filter(x, params: MarketRegimeParams,
+               state: RegimeFilterState | None = None) -> RegimeFiltered:
         """Fixed-parameter path, see :func:`market_filter`."""
         return market_filter(x, params, state)
 
@@ -435,7 +437,9 @@ class MarketRegimeModel:
         hmm.means_ = np.array([z[groups == s].mean(axis=0) for s in range(k)])
         covs = np.array([np.cov(z[groups == s].T).reshape(n, n) + self.min_covar * np.eye(n)
                          for s in range(k)])
-        hmm.covars_ = covs if self.covariance_type == "full" else np.diagonal(covs, axis1=1, axis2=2)
+        if self.covariance_type == "diag":
+            covs = np.diagonal(covs, axis1=1, axis2=2)
+        hmm.covars_ = covs
         return hmm
 
     # -- one candidate ---------------------------------------------------------
@@ -573,8 +577,9 @@ class MarketRegimeModel:
                                                     columns)
         filt = market_filter(x, params)
         if match is not None and tuple(match) != tuple(range(params.n_states)):
-            notes.append("state meanings changed since the previous fit: state k now "
-                         f"resembles previous state {list(match)}[k]")
+            pairs = ", ".join(f"{i}->{j}" for i, j in enumerate(match) if i != j)
+            notes.append("state meanings changed since the previous fit (new state -> "
+                         f"closest previous state: {pairs})")
         return MarketRegimeFit(
             "ok", "ok", chosen.n_states, t_len, n, params, loglik=filt.loglik,
             bic=-2.0 * filt.loglik + chosen.n_params * math.log(t_len), converged=True,

@@ -427,7 +427,8 @@ def filter_from_log_densities(log_dens, transition, state: RegimeFilterState) ->
     return RegimeFiltered(filtered, predicted, loglik_t, total, new_state)
 
 
-def hamilton_filter(returns, params: RegimeParams, state: RegimeFilterState | None = None) -> RegimeFiltered:
+def hamilton_filter(returns, params: RegimeParams,
+                    state: RegimeFilterState | None = None) -> RegimeFiltered:
     """Filter rows at fixed parameters, in time proportional to the rows.
 
     Parameters
@@ -503,6 +504,9 @@ class BestOfFit:
     admissible : bool
         False when every polished result failed the ``admissible`` test and the best
         inadmissible one was kept.
+    n_degenerate : int
+        Starts whose search/EM stage ended at a non-finite likelihood (typically a
+        variance collapsed to zero on repeated values).
     """
 
     params: np.ndarray | None
@@ -512,6 +516,7 @@ class BestOfFit:
     polished_llfs: tuple
     message: str
     admissible: bool = True
+    n_degenerate: int = 0
 
 
 def _optimizer_converged(retvals, gtol_fallback):
@@ -562,7 +567,7 @@ def fit_best_of(
         variance collapsed onto a few identical values, where the likelihood is
         unbounded) lose to any admissible one whatever their likelihood.
     """
-    start_llfs, screened = [], []
+    start_llfs, screened, n_degenerate = [], [], 0
     for s in starts:
         try:
             with warnings.catch_warnings():
@@ -575,12 +580,17 @@ def fit_best_of(
         except Exception:  # a bad start must not sink the other starts
             p, llf = None, -np.inf
         if not np.isfinite(llf):
+            n_degenerate += p is not None
             p, llf = None, -np.inf
         start_llfs.append(llf)
         screened.append(p)
     ranked = [i for i in np.argsort(start_llfs)[::-1] if screened[i] is not None]
     if not ranked:
-        return BestOfFit(None, np.nan, False, tuple(start_llfs), (), "every start failed")
+        msg = "every start failed"
+        if n_degenerate:
+            msg += (f"; at {n_degenerate} of them the likelihood became non-finite (a "
+                    "regime variance collapsed to zero)")
+        return BestOfFit(None, np.nan, False, tuple(start_llfs), (), msg, False, n_degenerate)
     best, best_bad = None, None
     polished = []
     for i in ranked[: len(ranked) if n_polish is None else max(1, n_polish)]:
@@ -609,7 +619,8 @@ def fit_best_of(
     if best is None:
         return BestOfFit(None, np.nan, False, tuple(start_llfs), tuple(polished),
                          "the optimizer failed from every polished start")
-    return BestOfFit(best[1], best[0], best[2], tuple(start_llfs), tuple(polished), best[3], ok)
+    return BestOfFit(best[1], best[0], best[2], tuple(start_llfs), tuple(polished), best[3], ok,
+                     n_degenerate)
 
 
 # ----------------------------------------------------------------------------
@@ -725,6 +736,10 @@ class MarkovRegimeModel:
         'unidentified' (the data show no regime structure).
     vol_tie_ratio : float
         See :func:`order_regimes`.
+    max_repeat_share : float
+        If one exact value (typically 0.0 from stale or filled prices) makes up at least
+        this share of rows, the fit is 'unidentified' before any optimisation: a regime
+        would collapse onto it with unbounded likelihood.
     """
 
     def __init__(self, k_regimes: int = 2, *, n_starts: int = 3, warm_starts: int = 1,
@@ -733,7 +748,7 @@ class MarkovRegimeModel:
                  maxiter: int = 200, seed: int = 0, min_obs: int | None = None,
                  min_regime_share: float = 0.01, min_regime_obs: float = 10.0,
                  min_variance_ratio: float = 1e-4, require_bic_gain: bool = True,
-                 vol_tie_ratio: float = 1.05):
+                 vol_tie_ratio: float = 1.05, max_repeat_share: float = 0.05):
         if k_regimes not in (2, 3):
             raise ValueError("k_regimes must be 2 or 3")
         if n_starts < 1 or (n_polish is not None and n_polish < 1):
@@ -754,10 +769,12 @@ class MarkovRegimeModel:
         self.min_variance_ratio = float(min_variance_ratio)
         self.require_bic_gain = bool(require_bic_gain)
         self.vol_tie_ratio = float(vol_tie_ratio)
+        self.max_repeat_share = float(max_repeat_share)
 
     # -- fixed-parameter path -------------------------------------------------
     @staticmethod
-    def filter(returns, params: RegimeParams, state: RegimeFilterState | None = None) -> RegimeFiltered:
+    def filter(returns, params: RegimeParams,
+               state: RegimeFilterState | None = None) -> RegimeFiltered:
         """Filter new rows at given parameters from a saved state (see :func:`hamilton_filter`)."""
         return hamilton_filter(returns, params, state)
 
@@ -810,6 +827,12 @@ class MarkovRegimeModel:
                                  "fit needs a complete series", t_len)
         if np.var(y) <= 0:
             return self._failure("unidentified", "the series is constant", t_len)
+        values, counts = np.unique(y, return_counts=True)
+        top = int(np.argmax(counts))
+        if counts[top] >= self.max_repeat_share * t_len:
+            return self._failure(
+                "unidentified", f"{counts[top] / t_len:.0%} of rows equal {values[top]:g} "
+                "(stale or filled data?); a regime would collapse onto that value", t_len)
 
         y_pct = y * PERCENT
         model = MarkovRegression(y_pct, k_regimes=k, trend="c", switching_variance=True)
@@ -831,6 +854,10 @@ class MarkovRegimeModel:
         start_lls = tuple(ll + unit_shift if np.isfinite(ll) else ll for ll in best.start_llfs)
         common = dict(n_starts=len(starts), start_logliks=start_lls)
         if best.params is None:
+            if best.n_degenerate:
+                return self._failure(
+                    "unidentified", "a regime variance collapsed to zero at every start; "
+                    "repeated or stale values make the likelihood unbounded", t_len, **common)
             return self._failure("failed", best.message, t_len, **common)
 
         means_pct, var_pct, trans = regime_moments(model, best.params)
@@ -860,8 +887,9 @@ class MarkovRegimeModel:
 
         notes = []
         if match is not None and tuple(match) != tuple(range(k)):
-            notes.append("regime meanings changed since the previous fit: regime k now "
-                         f"resembles previous regime {list(match)}[k]")
+            pairs = ", ".join(f"{i}->{j}" for i, j in enumerate(match) if i != j)
+            notes.append("regime meanings changed since the previous fit (new regime -> "
+                         f"closest previous regime: {pairs})")
         bic = -2.0 * filt.loglik + self.n_params * math.log(t_len)
         return RegimeFit(
             "ok", "ok", k, t_len, params, loglik=filt.loglik, bic=bic, converged=True,
