@@ -19,6 +19,8 @@ CREATE TABLE drop_files(drop_id BIGINT PRIMARY KEY, sha256 VARCHAR NOT NULL, fil
 
 CREATE TABLE estimation_runs(run_id BIGINT PRIMARY KEY, kind VARCHAR NOT NULL, reason VARCHAR DEFAULT('') NOT NULL, subjects VARCHAR DEFAULT('') NOT NULL, from_date DATE, through_date DATE, started_at TIMESTAMP NOT NULL, finished_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, status VARCHAR DEFAULT('ok') NOT NULL, message VARCHAR DEFAULT('') NOT NULL);
 
+CREATE TABLE exposure_estimates(asset_id VARCHAR, factor_id VARCHAR, date DATE, vintage INTEGER, beta DOUBLE, beta_se DOUBLE, window_rows INTEGER NOT NULL, computed_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, superseded_at TIMESTAMP, PRIMARY KEY(asset_id, factor_id, date, vintage));
+
 CREATE TABLE factor_returns(factor_id VARCHAR, date DATE, ret DOUBLE NOT NULL, drop_id BIGINT, PRIMARY KEY(factor_id, date));
 
 CREATE TABLE factors(factor_id VARCHAR PRIMARY KEY, "label" VARCHAR NOT NULL, description VARCHAR DEFAULT('') NOT NULL, frequency VARCHAR NOT NULL, is_traded BOOLEAN DEFAULT(true) NOT NULL, is_new BOOLEAN DEFAULT(false) NOT NULL, start_date DATE, declared_by BIGINT, declared_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, CHECK((frequency IN ('daily', 'monthly'))));

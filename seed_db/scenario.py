@@ -67,7 +67,7 @@ FACTORS: tuple[FactorSpec, ...] = (
     FactorSpec("QUAL", "Quality", "Profitable, stable firms minus the rest", 0.0040, 0.45, 0.04),
     FactorSpec("LOWVOL", "Low volatility", "Low minus high trailing volatility, beta-neutral", 0.0050, 0.35, 0.06),
     FactorSpec("CARRY", "Carry", "High minus low yielding currencies and futures", 0.0045, 0.30, -0.10),
-    FactorSpec("TERM", "Term", "Long minus short government bonds", 0.0030, 0.20, 0.08),
+    FactorSpec("TERM", "Term", "Long minus short government bonds", 0.0032, 0.20, 0.08),
     FactorSpec("REV", "Short-term reversal", "Past month losers minus winners", 0.0065, 0.00, 0.00),
     FactorSpec("SENT", "Sentiment (proposed)", "Newly proposed text-sentiment signal, three years of history",
                0.0050, 0.00, 0.00, is_new=True),

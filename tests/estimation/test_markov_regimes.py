@@ -264,6 +264,19 @@ def test_relabel_stability_on_refit(fit_first, fit_full):
     np.testing.assert_allclose(fit_full.params.vols, TRUE_VOLS, rtol=0.1)
 
 
+def test_crossing_against_previous_is_reported(sim2, fit_first):
+    # A previous fit whose labels mean the opposite (volatile first): the refit keeps
+    # calm = 0 and says which previous regime each new one resembles.
+    y, _ = sim2
+    p = fit_first.params
+    flipped = RegimeParams(2, p.means[::-1], p.variances[::-1], p.transition[::-1, ::-1])
+    fit = MarkovRegimeModel().fit(y[:3000], previous=flipped)
+    assert fit.ok
+    assert fit.params.vols[0] < fit.params.vols[1]
+    assert fit.previous_match == (1, 0)
+    assert any("0->1" in w and "1->0" in w for w in fit.warnings)
+
+
 def test_labels_do_not_depend_on_the_seed(sim2, fit_first):
     y, _ = sim2
     other = MarkovRegimeModel(seed=12345).fit(y[:3000])

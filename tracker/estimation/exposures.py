@@ -19,7 +19,7 @@ any missing factor return is unusable for every asset.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -42,6 +42,8 @@ __all__ = [
 #: Meaning of the integer codes in :attr:`ExposureEstimate.cell_status`.
 CELL_STATUS = ("ok", "too_little_data", "unidentified")
 _OK, _TOO_LITTLE, _UNIDENTIFIED = 0, 1, 2
+# Fits with sum(y^2) / SSR above this go through the direct residual path (see _WindowMoments).
+_EXPANSION_LIMIT = 1e4
 
 
 # --------------------------------------------------------------------------- #
@@ -134,8 +136,8 @@ def _as_matrix(data: Any, name: str) -> tuple[np.ndarray, pd.Index | None, tuple
 def _overall_status(codes: np.ndarray) -> tuple[str, str]:
     n_ok = int(np.sum(codes == _OK))
     if n_ok == 0:
-        if codes.size and np.all(codes == _UNIDENTIFIED):
-            return "unidentified", "the factor returns are collinear in every window"
+        if np.any(codes == _UNIDENTIFIED):
+            return "unidentified", "the factor returns are collinear in every window with enough data"
         return "too_little_data", "no window holds enough observations for an estimate"
     n_short = int(np.sum(codes == _TOO_LITTLE))
     n_unid = int(np.sum(codes == _UNIDENTIFIED))
@@ -231,13 +233,16 @@ class RollingExposureModel:
     Notes
     -----
     The slopes come from the normal equations of each window (equilibrated
-    to keep the constant and the small factor returns on one scale). The HAC
-    middle matrix ``sum_j w_j sum_s x_s x_{s-j}' e_s e_{s-j}`` is a matrix
-    product of precomputed lagged regressor cross-products (rows s) with the
-    lagged residual products of all assets at once, so the cost per date is
-    about ``(hac_lags + 1) (K + 1)^2 window N`` multiply-adds. Missing asset
-    returns get a zero residual in place (the lag structure of the other rows
-    is kept); such windows use their own ``X'X``.
+    to keep the constant and the small factor returns on one scale). The
+    Newey-West middle matrix ``sum_j w_j sum_s x_s x_{s-j}' e_s e_{s-j}`` is
+    expanded in the window's coefficients and kept as sliding sums over rows
+    (:class:`_WindowMoments`), so a date costs about ``4 (hac_lags + 1) N
+    (K + 1)^3`` operations, independent of the window length. Assets with a
+    missing return in the window, and near-exact fits (where the expansion
+    would lose digits), are recomputed from their residuals
+    (:func:`_direct_cells`); a missing return gets a zero residual in place,
+    so the lag structure of the other rows is kept. statsmodels
+    ``OLS(cov_type='HAC')`` is the reference twin in the tests.
     """
 
     def __init__(
@@ -344,11 +349,22 @@ class RollingExposureModel:
             complete = enough & (n_i == cum_rows[t + 1] - cum_rows[a])
             partial = enough & ~complete
             cells = []
+            direct = partial
             if complete.any():
-                cells.append((np.flatnonzero(complete), *moments.cells(complete, x[a : t + 1], self.max_condition)))
-            if partial.any():
-                cells.append((np.flatnonzero(partial), *_direct_cells(
-                    x[a : t + 1], yz[a : t + 1][:, partial], valid[a : t + 1][:, partial],
+                idx = np.flatnonzero(complete)
+                coef, cov, ssr, sst, ok = moments.cells(complete, x[a : t + 1], self.max_condition)
+                # The expansion loses about log10(sum y^2 / SSR) digits; near-exact fits are
+                # recomputed from their residuals.
+                sharp = ok & (moments.yy[complete] > _EXPANSION_LIMIT * ssr)
+                if sharp.any():
+                    direct = partial.copy()
+                    direct[idx[sharp]] = True
+                    keep = ~sharp
+                    idx, coef, cov, ssr, sst, ok = idx[keep], coef[keep], cov[keep], ssr[keep], sst[keep], ok[keep]
+                cells.append((idx, coef, cov, ssr, sst, ok))
+            if direct.any():
+                cells.append((np.flatnonzero(direct), *_direct_cells(
+                    x[a : t + 1], yz[a : t + 1][:, direct], valid[a : t + 1][:, direct],
                     [lp[a : t + 1] for lp in lag_prod], weights, self.max_condition)))
             for idx, coef, cov, ssr, sst, ok in cells:
                 n_sel = n_i[idx]
@@ -357,7 +373,8 @@ class RollingExposureModel:
                 good, bad = idx[ok], idx[~ok]
                 codes[o, good] = _OK
                 codes[o, bad] = _UNIDENTIFIED
-                var_diag = np.diagonal(cov, axis1=1, axis2=2)[ok]
+                # Rounding in the expanded middle matrix can leave -1e-20 for exact fits.
+                var_diag = np.maximum(np.diagonal(cov, axis1=1, axis2=2)[ok], 0.0)
                 alpha[o, good] = coef[ok, 0]
                 betas[o, good] = coef[ok, 1:]
                 alpha_se[o, good] = np.sqrt(var_diag[:, 0])
@@ -481,8 +498,7 @@ class _WindowMoments:
         p = self.p
         n = int(np.sum(sel))
         xtx = xw.T @ xw
-        coef, inv, ok = _solve_equilibrated(xtx[None], self.xy[sel][:, None, :].reshape(n, p), max_condition,
-                                            shared=True)
+        coef, inv, ok = _solve_equilibrated(xtx[None], self.xy[sel], max_condition, shared=True)
         bb = (coef[:, :, None] * coef[:, None, :]).reshape(n, p * p)
         half = (self.d[sel]
                 - np.einsum("nqc,nc->nq", self.b[sel].reshape(n, p * p, p), coef)
@@ -687,7 +703,6 @@ class _FilterOut:
     n: np.ndarray
     final_coef: np.ndarray
     final_cov: np.ndarray
-    extra: dict[str, Any] = field(default_factory=dict)
 
 
 class RandomWalkBetaModel:
@@ -806,8 +821,10 @@ class RandomWalkBetaModel:
         params : RandomWalkBetaParams
         state : RandomWalkBetaState, optional
             Saved state after the previous row; filtering resumes from it and
-            costs time proportional to the new rows. Without it the filter
-            starts from OLS on the first ``init_obs`` rows as in :meth:`fit`.
+            costs time proportional to the new rows. Without it (or for assets
+            whose saved state is empty) the filter starts from OLS on the first
+            ``init_obs`` rows as in :meth:`fit`. Assets whose parameters are
+            NaN (not estimable at the last fit) stay 'too_little_data'.
         """
         y, x, valid, dates, assets, factors = self._prepare(asset_returns, factor_returns)
         n_rows, n_assets = y.shape
@@ -827,8 +844,15 @@ class RandomWalkBetaModel:
                 raise ValueError("state does not match the assets and factors")
             coef0 = state.coef.copy()
             cov0 = state.coef_cov / s2[:, None, None]
-            start = np.where(np.all(np.isfinite(coef0), axis=1), 0, n_rows)
+            has_state = np.all(np.isfinite(coef0), axis=1)
+            start = np.where(has_state, 0, n_rows)
             n_init = state.nobs.copy()
+            if not has_state.all():
+                # Assets without a saved state (e.g. too short before) start from OLS on
+                # their first init_obs new rows, as in a fresh filter.
+                new = np.flatnonzero(~has_state)
+                c_new, p_new, s_new, n_new = _ols_start(y[:, new], x, valid[:, new], self._init_obs(p))
+                coef0[new], cov0[new], start[new], n_init[new] = c_new, p_new, s_new, n_new
         usable = np.isfinite(ratio) & np.all(np.isfinite(coef0), axis=1) & (start < n_rows)
         ratio_f = np.where(usable, ratio, 0.0)
         start = np.where(usable, start, n_rows)

@@ -24,7 +24,6 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-import pandas as pd
 from scipy import stats
 
 from tracker.estimation.exposures import (
@@ -625,8 +624,9 @@ class FamaMacBeth:
         sig_f = np.cov(fm, rowvar=False, ddof=0).reshape(k, k)
         lam_f = lam[int(self.intercept):]
         c = float(lam_f @ np.linalg.solve(sig_f, lam_f))
-        e = np.where(use & np.isfinite(resid), resid, 0.0)
-        m = (e != 0).astype(float)
+        seen = use & np.isfinite(resid)
+        e = np.where(seen, resid, 0.0)
+        m = seen.astype(float)
         pair = np.maximum(m.T @ m, 1.0)
         sig_e = (e.T @ e) / pair
         zok = np.where(np.isfinite(z), z, 0.0)

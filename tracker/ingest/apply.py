@@ -89,12 +89,17 @@ def ingest_bytes(store: Store, config: Config, data: bytes, meta: DropMeta, *,
     today = today or date.today()
     with store.connect() as con:
         dup = first_row(con.execute(sql("ingest.applied_by_sha"), [meta.sha256]))
-    if dup is None:
-        try:
-            staged = parse_drop(data, time_limit_s=sandbox_time_limit(meta.size_bytes))
-        except Rejected as exc:
-            return record_rejection(store, meta, exc.rejection)
+    if dup is not None:
+        # drop_files rows are never deleted, so an applied sha256 stays applied.
+        with store.transaction() as con:
+            return _record_duplicate(con, meta, int(dup[0]))
+    try:
+        staged = parse_drop(data, time_limit_s=sandbox_time_limit(meta.size_bytes))
+    except Rejected as exc:
+        return record_rejection(store, meta, exc.rejection)
     with store.transaction() as con:
+        # Checked again inside the transaction: another process may have applied an
+        # identical file while this one was being read.
         dup = first_row(con.execute(sql("ingest.applied_by_sha"), [meta.sha256]))
         if dup is not None:
             return _record_duplicate(con, meta, int(dup[0]))

@@ -53,9 +53,51 @@ Example::
       ('CARRY2', DATE '2026-11-03', 0.0011);
     INSERT INTO risk_free (date, rate) VALUES ('2026-11-03', 0.000151);
 
+Outcomes
+    Every file gets exactly one: ``applied`` (moved to ``applied/``), ``duplicate``
+    (byte-identical to an applied file, same sha256, whatever its name: nothing is
+    written; moved to ``applied/``) or ``rejected`` (nothing is written; moved to
+    ``rejected/``). Each is a ``drop_files`` row and a ``<name>.receipt.json`` beside the
+    file. A rejection names the statement, the line and the rule; the whole file is
+    rejected at the first fault:
+
+    ==================== =======================================================
+    rule                 when
+    ==================== =======================================================
+    file_too_large       over ``[ingest] max_file_mb`` MiB; not read at all
+    binary               a NUL byte (binary data)
+    not_utf8             bytes that are not UTF-8
+    empty                no statement: empty, whitespace or comments only (an
+                         upstream job with nothing to send should send no file)
+    syntax               not parseable (the scanner's or DuckDB's parser message)
+    forbidden_statement  any statement that is not an INSERT: DDL, DELETE,
+                         UPDATE, COPY, ATTACH, DETACH, PRAGMA, SET, RESET,
+                         INSTALL, LOAD, BEGIN/COMMIT/ROLLBACK, CALL, CHECKPOINT,
+                         EXPORT, SELECT, WITH ..., VACUUM, USE ...
+    forbidden_insert     INSERT ... SELECT, INSERT OR REPLACE/IGNORE, DEFAULT
+                         VALUES, BY NAME, ON CONFLICT, RETURNING
+    unknown_table        INSERT into any table but the five (the store's own
+                         logs, fits, estimates, meta included) or another catalog
+    unknown_column       a column the table does not have
+    duplicate_column     a column listed twice
+    missing_column       a column list without a required column
+    row_width            a row with the wrong number of values
+    not_constant         a function call, subquery, name or other non-constant
+                         inside VALUES (``read_csv(...)``, ``(SELECT ...)``)
+    bad_value            a value that does not convert to its column's type
+    sandbox_limit        the sandbox's time or memory limit was reached
+    internal_error       the file made the program fail; kept, not retried
+    ==================== =======================================================
+
+    and the row rules of :mod:`tracker.ingest.validate` (missing_value, bad_id,
+    bad_label, bad_frequency, duplicate_key, redeclared, id_clash, unknown_series,
+    non_finite, implausible_date, future_date, before_start, return_floor, too_large),
+    with its warnings (large_move, weekend_date, not_month_end, two_rows_in_month).
+
 Every file is untrusted code: see :mod:`tracker.ingest.sandbox` for how it is read
 and :mod:`tracker.ingest.validate` for the row rules applied before the store is
-touched.
+touched, :mod:`tracker.ingest.inbox` for the inbox folders and crash recovery, and
+:mod:`tracker.ingest.apply` for revisions and the change markers.
 """
 
 from __future__ import annotations

@@ -143,7 +143,7 @@ def claim_copy(src: Path, processing: Path) -> tuple[Path, str]:
     token = secrets.token_hex(8)
     name = src.name if src.name.endswith(".sql") else src.name + ".sql"
     _activate(token)
-    tmp = processing / f".{name}.{token}.part"
+    tmp = processing / f".{name}.{os.getpid()}.{token}.part"
     try:
         shutil.copyfile(src, tmp)
         target = processing / _claim_name(name, token)
@@ -212,6 +212,7 @@ def recover_claims(store: Store, config: Config, *, today: date | None = None) -
     """Finish or redo the files left in ``processing/`` by processes that are gone."""
     folders = inbox_folders(config.inbox_path(store.folder))
     processing = folders[PROCESSING]
+    _sweep_temporaries(folders)
     outcomes = []
     for path in sorted(processing.iterdir()):
         parsed = parse_claim(path.name)
@@ -235,6 +236,18 @@ def recover_claims(store: Store, config: Config, *, today: date | None = None) -
         else:
             outcomes.append(_finish_recorded(store, config, claimed, token, row))
     return outcomes
+
+
+def _sweep_temporaries(folders: dict[str, Path]) -> None:
+    """Remove this module's own temporary files (receipts, copies) left by dead processes."""
+    for key in (PROCESSING, APPLIED, REJECTED):
+        for path in folders[key].glob(".*.*.*.*"):
+            parts = path.name.rsplit(".", 3)
+            if len(parts) != 4 or parts[3] not in ("tmp", "part") or not parts[1].isdigit():
+                continue
+            pid = int(parts[1])
+            if pid != os.getpid() and not owner_alive(pid, "", path):
+                path.unlink(missing_ok=True)
 
 
 def _finish_recorded(store: Store, config: Config, claimed: Path, token: str, row) -> Outcome:

@@ -42,7 +42,7 @@ import pyarrow as pa
 
 from tracker.ingest.dropformat import TABLES, DropTable
 from tracker.ingest.outcome import Rejection
-from tracker.ingest.scanner import LiteralBatch, Scan, ScanError, Statement, literal_row_offsets, scan
+from tracker.ingest.scanner import BATCH_ROWS, LiteralBatch, Scan, ScanError, Statement, literal_row_offsets, scan
 from tracker.store.sqlfiles import sql
 
 EXEC_CHUNK = 1000
@@ -155,15 +155,31 @@ def parse_drop(data: bytes, *, time_limit_s: float = 120.0) -> Staged:
 def _parse(con: duckdb.DuckDBPyConnection, text: str) -> Staged:
     pieces: dict[str, _Pieces] = {}
     checked_heads: set[tuple[str, int]] = set()
+    # Bulk rows wait here per column list until there are enough for one decoding query,
+    # so a file of many small statements costs a few queries, not three per statement.
+    pending: dict[tuple[str, tuple[str, ...]], list[tuple[Statement, LiteralBatch, list]]] = {}
+    counts: dict[tuple[str, tuple[str, ...]], int] = {}
+
+    def flush(key) -> None:
+        segments = pending.pop(key, [])
+        counts.pop(key, None)
+        if segments:
+            _decode_segments(con, text, segments, pieces.setdefault(key[0], _Pieces()))
 
     def sink(st: Statement, batch: LiteralBatch) -> None:
         _check_head(st, checked_heads)
-        _decode_batch(con, text, st, batch, pieces.setdefault(st.table.name, _Pieces()))
+        key = (st.table.name, st.columns)
+        pending.setdefault(key, []).append((st, batch, batch.rows))
+        counts[key] = counts.get(key, 0) + batch.n_rows
+        if counts[key] >= BATCH_ROWS:
+            flush(key)
 
     try:
         sc = scan(text, sink)
     except ScanError as exc:
         raise Rejected(_name_scan_error(exc)) from None
+    for key in list(pending):
+        flush(key)
     if not sc.statements:
         raise Rejected(Rejection("empty", "the file holds no statements (it is empty or only comments); "
                                  "an upstream job that has nothing to send should send no file"))
@@ -222,13 +238,16 @@ def _check_head(st: Statement, checked: set[tuple[str, int]]) -> None:
     checked.add(key)
 
 
-def _decode_batch(con, text: str, st: Statement, batch: LiteralBatch, out: _Pieces) -> None:
-    width = len(st.columns)
-    struct = pa.array(batch.rows, type=pa.struct([(f"c{k}", pa.string()) for k in range(2 * width)]))
+def _decode_segments(con, text: str, segments: list, out: _Pieces) -> None:
+    """Decode bulk rows of one column list (from one or more statements) in one query per column."""
+    st0 = segments[0][0]
+    table, columns = st0.table, st0.columns
+    rows = segments[0][2] if len(segments) == 1 else [r for seg in segments for r in seg[2]]
+    struct = pa.array(rows, type=pa.struct([(f"c{k}", pa.string()) for k in range(2 * len(columns))]))
     parts = struct.flatten()
     decoded: dict[str, tuple[np.ndarray, np.ndarray]] = {}
-    for j, name in enumerate(st.columns):
-        col = st.table.column(name)
+    for j, name in enumerate(columns):
+        col = table.column(name)
         con.register("cells", pa.table({"q": parts[2 * j], "b": parts[2 * j + 1]}))
         try:
             res = con.execute(sql(f"ingest.sandbox_decode_{col.sql_type.lower()}")).fetchnumpy()
@@ -237,12 +256,17 @@ def _decode_batch(con, text: str, st: Statement, batch: LiteralBatch, out: _Piec
         ok = np.asarray(res["ok"], dtype=bool)
         if not ok.all():
             k = int(np.argmin(ok))
-            raw = batch.rows[k][2 * j] if batch.rows[k][2 * j + 1] == "" else batch.rows[k][2 * j + 1]
-            line = _batch_row_line(text, st, batch, k)
-            raise Rejected(Rejection("bad_value", f"{name} value {raw[:60]!r} is not a valid "
-                                     f"{col.sql_type}", st.number, line))
+            raw = rows[k][2 * j] if rows[k][2 * j + 1] == "" else rows[k][2 * j + 1]
+            for st, batch, seg_rows in segments:
+                if k < len(seg_rows):
+                    break
+                k -= len(seg_rows)
+            raise Rejected(Rejection("bad_value", f"{name} value {raw[:60]!r} is not a valid {col.sql_type}",
+                                     st.number, _batch_row_line(text, st, batch, k)))
         decoded[name] = _split_masked(res["v"], col.sql_type)
-    _add(out, st.table, decoded, st.number, np.arange(batch.first_row, batch.first_row + batch.n_rows))
+    statements = np.concatenate([np.full(b.n_rows, st.number, dtype=np.int32) for st, b, _ in segments])
+    positions = np.concatenate([np.arange(b.first_row, b.first_row + b.n_rows) for _, b, _ in segments])
+    _add(out, table, decoded, statements, positions)
 
 
 def _batch_row_line(text: str, st: Statement, batch: LiteralBatch, k: int) -> int:
@@ -264,7 +288,7 @@ def _split_masked(v, sql_type: str) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _add(out: _Pieces, table: DropTable, decoded: dict[str, tuple[np.ndarray, np.ndarray]],
-         statement: int, rows: np.ndarray) -> None:
+         statement: int | np.ndarray, rows: np.ndarray) -> None:
     n = len(rows)
     for col in table.columns:
         if col.name in decoded:
@@ -274,7 +298,7 @@ def _add(out: _Pieces, table: DropTable, decoded: dict[str, tuple[np.ndarray, np
             mask = np.ones(n, dtype=bool)
         out.values.setdefault(col.name, []).append(data)
         out.null.setdefault(col.name, []).append(mask)
-    out.statement.append(np.full(n, statement, dtype=np.int32))
+    out.statement.append(np.broadcast_to(np.asarray(statement, dtype=np.int32), (n,)).copy())
     out.row.append(rows.astype(np.int64))
 
 

@@ -328,9 +328,9 @@ def check_returns(
                                dtype="datetime64[D]")
             kind = label
             faults.append(("unknown_series", st, ~_lookup(known_u, codes, True) & ~null_any,
-                           lambda i, ids=ids, kind=kind: (
+                           lambda i, ids=ids, kind=kind, decl=DECLARED_IN[name]: (
                                f"{kind} {ids[i]!r} is not declared (neither in the store nor in this "
-                               f"file); declare it in {DECLARED_IN[name]} first")))
+                               f"file); declare it in {decl} first")))
         finite = np.isfinite(vals)
         faults.append(("non_finite", st, ~finite & ~null_any,
                        lambda i, vals=vals, who=who, vc=vc: f"{vc} of {who(i)} is not a finite number ({vals[i]})"))

@@ -231,7 +231,14 @@ def update(
     with estimation_lock(store) as acquired:
         if not acquired:
             return RunSummary(skipped="another process is estimating; its results will appear when it finishes")
-        return _update_locked(store, config, refit, only, progress, executor)
+        summary = _update_locked(store, config, refit, only, progress, executor)
+        from tracker.service.assets import update_exposures
+
+        n = update_exposures(store, config)
+        if n:
+            summary.kinds["*exposures*"] = "advance"
+            summary.rows_written += n
+        return summary
 
 
 def _update_locked(store, config, refit, only, progress, executor) -> RunSummary:
@@ -240,7 +247,7 @@ def _update_locked(store, config, refit, only, progress, executor) -> RunSummary
     plans = _plan(inp, config, refit, only)
     market_needed = bool(plans) or (refit is not None) or not market_mod.has_state(inp.states)
     if not plans and not market_needed:
-        return RunSummary()
+        return RunSummary(kinds={})
     settings = _settings(config)
     freq = dict(zip(inp.factors["factor_id"], inp.factors["frequency"]))
     tasks = [_task(inp, p, freq[p.factor_id], settings) for p in plans]

@@ -11,7 +11,7 @@ from tracker.store.connection import Store
 EXPORTABLE = (
     "factors", "factor_returns", "assets", "asset_returns", "risk_free", "drop_files",
     "revisions", "model_fits", "premium_estimates", "regime_estimates", "warnings",
-    "estimation_runs", "reviews", "truth_premia", "truth_regimes", "truth_exposures",
+    "estimation_runs", "reviews", "exposure_estimates", "truth_premia", "truth_regimes", "truth_exposures",
 )
 FORMATS = ("csv", "parquet")
 

@@ -1,0 +1,1 @@
+INSERT INTO factor_returns BY NAME VALUES ('MKT', DATE '2026-11-03', 0.01);

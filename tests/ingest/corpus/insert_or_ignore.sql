@@ -1,0 +1,1 @@
+INSERT OR IGNORE INTO factor_returns VALUES ('MKT', DATE '2026-11-03', 0.01);

@@ -1,0 +1,248 @@
+"""From factor premia to expected asset excess returns, pricing errors and the SDF.
+
+Stored (real-time vintages, table ``exposure_estimates``): rolling-window OLS exposures of
+each asset's excess return (total return minus the risk-free rate) on the factors, with
+Newey-West standard errors, using data up to each date only. Computed on demand for the
+assets view and the report, from the stored data and the latest filtered premia:
+
+* expected excess return = beta' lambda, annualised, with a delta-method standard error
+  that includes both premium and exposure uncertainty (premia treated as independent:
+  the store keeps each factor's filtered variance, not their covariance);
+* the asset's own realised mean excess return, the gap (pricing error) and its HAC t-stat;
+* the GRS test of joint alphas (Gibbons, Ross & Shanken 1989);
+* Fama-MacBeth (1973) cross-sectional premia beside the time-series (filtered) premia, and
+  the complete-market inversion lambda = B^-1 (mu - r) when it is identified;
+* the implied linear SDF m = 1 - b'(f - E f), b = Sigma^-1 mu, from the filtered premia and
+  the recent factor covariance: its volatility is the maximal Sharpe ratio of the factor
+  span (Hansen & Jagannathan 1991); pricing errors per asset.
+
+Which factors enter: the daily long-history factors (those of the market regime), since a
+row with any missing factor cannot be used; a short-history factor would shrink every
+window to its own history.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from tracker.config import Config
+from tracker.estimation.exposures import RollingExposureModel
+from tracker.estimation.pricing import (
+    CompleteMarketInversion,
+    ExpectedReturnModel,
+    FamaMacBeth,
+    GRSTest,
+    LinearSDF,
+    implied_excess_returns,
+)
+from tracker.service.factor_models import PERIODS_PER_YEAR
+from tracker.store.connection import Store
+from tracker.store.sqlfiles import sql
+
+ALPHA = "*alpha*"
+
+
+@dataclass(frozen=True)
+class Panel:
+    dates: pd.DatetimeIndex
+    excess: pd.DataFrame          # (T, N) asset excess returns, decimal per period
+    factors: pd.DataFrame         # (T, K) factor returns
+    frequency: str
+
+
+def _panel(con, frequency: str = "daily") -> Panel | None:
+    assets = con.execute(sql("assets.assets")).df()
+    assets = assets[assets["frequency"] == frequency]
+    if assets.empty:
+        return None
+    rets = con.execute(sql("assets.asset_returns")).df()
+    rets = rets[rets["asset_id"].isin(assets["asset_id"])]
+    rf = con.execute(sql("assets.risk_free"), [frequency]).df()
+    fac = con.execute(sql("estimation.factor_returns_all")).df()
+    meta = con.execute(sql("estimation.factors")).df()
+    meta = meta[(meta["frequency"] == frequency) & meta["is_traded"]]
+    wide_f = fac[fac["factor_id"].isin(meta["factor_id"])].pivot(index="date", columns="factor_id", values="ret")
+    if wide_f.empty:
+        return None
+    counts = wide_f.count()
+    keep = counts[counts >= 0.9 * counts.max()].index
+    wide_f = wide_f[sorted(keep)].dropna()
+    wide_a = rets.pivot(index="date", columns="asset_id", values="ret")
+    rf = rf.set_index("date")["rate"]
+    excess = wide_a.sub(rf, axis=0)
+    idx = wide_f.index.intersection(excess.dropna(how="all").index).intersection(rf.index)
+    if len(idx) == 0:
+        return None
+    return Panel(pd.DatetimeIndex(idx), excess.loc[idx], wide_f.loc[idx], frequency)
+
+
+def _window(config: Config, frequency: str) -> int:
+    return config.assets.window_daily if frequency == "daily" else config.assets.window_monthly
+
+
+def update_exposures(store: Store, config: Config) -> int:
+    """Store rolling exposures for dates not yet estimated; return rows written.
+
+    A revision of an asset return or of the risk-free rate since the last write
+    supersedes the exposures from the revised date on and re-derives them.
+    """
+    with store.connect() as con:
+        panel = _panel(con)
+        last = con.execute(sql("assets.last_exposure_date")).fetchone()[0]
+        vintage = int(con.execute(sql("assets.exposure_vintage")).fetchone()[0])
+        last_write = con.execute(sql("assets.last_exposure_write")).fetchone()[0]
+        revised_from = None
+        if last_write is not None:
+            revised_from = con.execute(sql("assets.asset_revisions_since"), [last_write]).fetchone()[0]
+    if panel is None:
+        return 0
+    window = _window(config, panel.frequency)
+    model = RollingExposureModel(window)
+    dates = panel.dates
+    supersede = None
+    if last is None:
+        start, vintage = 0, max(vintage, 0) + 1
+    elif revised_from is not None and pd.Timestamp(revised_from) <= pd.Timestamp(last):
+        start = int(dates.searchsorted(pd.Timestamp(revised_from)))
+        vintage, supersede = vintage + 1, pd.Timestamp(revised_from).date()
+    else:
+        start = int(dates.searchsorted(pd.Timestamp(last), side="right"))
+    if start >= len(dates) and supersede is None:
+        return 0
+    first_row = max(0, start - (window - 1))
+    est = model.fit(panel.excess.iloc[first_row:], panel.factors.iloc[first_row:], output_from=start - first_row) \
+        if start < len(dates) else None
+    frame = _exposure_frame(est, vintage, window) if est is not None else pd.DataFrame()
+    with store.transaction() as con:
+        if supersede is not None:
+            con.execute(sql("assets.supersede_exposures"), [supersede])
+        if len(frame):
+            con.register("incoming_frame", frame)
+            con.execute(sql("assets.insert_exposure_frame"))
+            con.unregister("incoming_frame")
+    return len(frame)
+
+
+def _exposure_frame(est, vintage: int, window: int) -> pd.DataFrame:
+    t, n, k = est.betas.shape
+    if t == 0:
+        return pd.DataFrame()
+    ok = est.cell_status == 0                                   # (T, N)
+    dates = np.repeat(np.asarray(est.dates), n)
+    assets = np.tile(np.asarray(est.assets), t)
+    parts = []
+    for j, fid in enumerate((ALPHA,) + tuple(est.factors)):
+        beta = est.alpha if j == 0 else est.betas[:, :, j - 1]
+        se = est.alpha_se if j == 0 else est.se[:, :, j - 1]
+        parts.append(pd.DataFrame({
+            "asset_id": assets, "factor_id": fid, "date": dates,
+            "vintage": vintage, "beta": np.where(ok, beta, np.nan).ravel(),
+            "beta_se": np.where(ok, se, np.nan).ravel(), "window_rows": window,
+        }))
+    df = pd.concat(parts, ignore_index=True)
+    return df[np.isfinite(df["beta"])]
+
+
+@dataclass(frozen=True)
+class AssetRow:
+    asset_id: str
+    label: str
+    expected_ann: float           # beta' lambda, annualised
+    expected_se_ann: float
+    realised_ann: float           # realised mean excess return, annualised
+    gap_ann: float                # realised - expected (pricing error)
+    gap_t: float
+    alpha_ann: float              # time-series alpha against the factor means (HAC t below)
+    alpha_t: float
+    exposures: dict               # factor_id -> (beta, se) at the latest date
+
+
+@dataclass(frozen=True)
+class AssetsView:
+    status: str                   # ok, or why the view is unavailable
+    message: str
+    date: object
+    factors: tuple[str, ...]
+    rows: tuple[AssetRow, ...]
+    filtered_premia_ann: dict     # factor -> filtered premium (annualised)
+    fama_macbeth_ann: dict        # factor -> (premium, Shanken se), annualised
+    inversion_ann: dict           # factor -> premium, or {} when not identified
+    inversion_message: str
+    grs_f: float
+    grs_p: float
+    sdf_max_sharpe_ann: float     # from filtered premia and the recent covariance
+    sdf_max_sharpe_sample_ann: float
+    sdf_max_sharpe_sample_se_ann: float
+    sdf_b: dict
+    sdf_pricing_errors_ann: dict  # asset -> E[m R^e], annualised (sample moments)
+    window: int
+
+
+def _unavailable(message: str) -> AssetsView:
+    return AssetsView("unavailable", message, None, (), (), {}, {}, {}, "", float("nan"), float("nan"),
+                      float("nan"), float("nan"), float("nan"), {}, {}, 0)
+
+
+def load_assets_view(store: Store, config: Config) -> AssetsView:
+    with store.connect() as con:
+        panel = _panel(con)
+        labels = dict(con.execute(sql("assets.assets")).df()[["asset_id", "label"]].itertuples(index=False))
+        premia = con.execute(sql("assets.latest_premia")).df().set_index("factor_id")
+        stored = con.execute(sql("assets.latest_exposures")).df()
+    if panel is None:
+        return _unavailable("No assets with returns on the factors' dates yet.")
+    factors = tuple(panel.factors.columns)
+    missing = [f for f in factors if f not in premia.index]
+    if missing:
+        return _unavailable(f"No filtered premium yet for {', '.join(missing)}; run an update first.")
+    ppy = PERIODS_PER_YEAR[panel.frequency]
+    window = _window(config, panel.frequency)
+    lam = premia.loc[list(factors), "premium"].to_numpy(float)
+    lam_var = np.diag(premia.loc[list(factors), "premium_sd"].to_numpy(float) ** 2)
+    recent_a, recent_f = panel.excess.iloc[-window:], panel.factors.iloc[-window:]
+    est = RollingExposureModel(window, min_nobs=min(window, len(recent_f))).fit(
+        recent_a, recent_f, output_from=len(recent_f) - 1)
+    betas = est.betas[-1]                                      # (N, K)
+    implied = implied_excess_returns(betas, lam[None, :], periods_per_year=ppy,
+                                     beta_cov=est.beta_cov_last, premia_cov=lam_var)
+    ert = ExpectedReturnModel(periods_per_year=ppy).fit(panel.excess, panel.factors, premia=lam, premia_cov=lam_var)
+    assets = tuple(panel.excess.columns)
+    expo_map: dict[str, dict] = {}
+    for r in stored.itertuples():
+        expo_map.setdefault(r.asset_id, {})[r.factor_id] = (float(r.beta), float(r.beta_se))
+    rows = []
+    for i, a in enumerate(assets):
+        realised = float(ert.realised_mean[i])
+        gap = realised - float(implied.expected[i])
+        se_gap = math.hypot(float(ert.realised_mean_se[i]), float(implied.se[i]))
+        rows.append(AssetRow(
+            asset_id=a, label=labels.get(a, a), expected_ann=float(implied.expected[i]),
+            expected_se_ann=float(implied.se[i]), realised_ann=realised, gap_ann=gap,
+            gap_t=gap / se_gap if se_gap > 0 else float("nan"),
+            alpha_ann=float(ert.alpha[i]), alpha_t=float(ert.alpha_t[i]),
+            exposures=expo_map.get(a, {f: (float(betas[i, j]), float(est.se[-1, i, j])) for j, f in enumerate(factors)}),
+        ))
+    grs = GRSTest().fit(panel.excess, panel.factors)
+    fm = FamaMacBeth().fit(panel.excess, panel.factors)
+    fm_ann = {f: (float(fm.premia[j]) * ppy, float(fm.premia_se_shanken[j]) * ppy) for j, f in enumerate(factors)}
+    inv = CompleteMarketInversion().fit(panel.excess.mean().to_numpy(), betas)
+    inv_ann = {f: float(inv.premia[j]) * ppy for j, f in enumerate(factors)} if inv.status == "ok" else {}
+    sigma = np.cov(recent_f.to_numpy(), rowvar=False, ddof=1)
+    b_filtered = np.linalg.solve(sigma, lam)
+    hj_filtered = math.sqrt(max(float(lam @ b_filtered), 0.0)) * math.sqrt(ppy)
+    sdf = LinearSDF(periods_per_year=ppy).fit(panel.factors, panel.excess)
+    return AssetsView(
+        status="ok", message="", date=panel.dates[-1].date(), factors=factors, rows=tuple(rows),
+        filtered_premia_ann={f: float(lam[j]) * ppy for j, f in enumerate(factors)},
+        fama_macbeth_ann=fm_ann, inversion_ann=inv_ann, inversion_message=inv.message,
+        grs_f=float(grs.grs_f), grs_p=float(grs.grs_pvalue),
+        sdf_max_sharpe_ann=hj_filtered, sdf_max_sharpe_sample_ann=float(sdf.max_sharpe_annual),
+        sdf_max_sharpe_sample_se_ann=float(sdf.max_sharpe_annual_se),
+        sdf_b={f: float(b_filtered[j]) for j, f in enumerate(factors)},
+        sdf_pricing_errors_ann={a: float(sdf.asset_pricing_errors[i]) * ppy for i, a in enumerate(assets)},
+        window=window,
+    )
