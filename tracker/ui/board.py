@@ -49,7 +49,8 @@ SORTS = (
     SortKey("ppos", "P(>0)", True, lambda r: _num(r.p_positive)),
     SortKey("regime", "regime probability", True, lambda r: _num(r.regime_prob)),
     SortKey("severity", "warning severity", True, lambda r: r.worst),
-    SortKey("changed", "changed since review", True, lambda r: len(r.changes)),
+    SortKey("changed", "changed since review", True,
+            lambda r: 2 * len(fmt.material_changes(r.changes)) + (1 if r.changes else 0)),
     SortKey("last", "last data date", False, lambda r: r.last_date.toordinal() if r.last_date else math.nan),
 )
 
@@ -122,7 +123,7 @@ def cell_text(r: BoardRow, key: str, layout: Layout) -> Text | str:
     """The text of one board cell (numbers right-aligned; severity by mark and colour)."""
     right = "right"
     if key == "chg":
-        return Text(fmt.CHANGED_MARK if r.changes else "", style="bold")
+        return Text(fmt.change_mark(r.changes), style="bold")
     if key == "factor":
         return r.factor_id
     if key == "name":
@@ -204,7 +205,8 @@ def row_summary(r: BoardRow, board: Board) -> list[str]:
     if board.header.last_review is None:
         line3 = "No review yet: press m to mark the board reviewed; changes are shown from then on."
     elif r.changes:
-        line3 = f"{fmt.CHANGED_MARK} changed since the review of {fmt.stamp(board.header.last_review)}: {'; '.join(r.changes)}"
+        line3 = (f"{fmt.change_mark(r.changes)} since the review of {fmt.stamp(board.header.last_review)}: "
+                 f"{'; '.join(r.changes)}")
     else:
         line3 = f"No change since the review of {fmt.stamp(board.header.last_review)}."
     return [line1, line2, line3]
@@ -228,7 +230,7 @@ class BoardScreen(Screen):
         Binding("s", "sort", "Sort", tooltip="Sort by the next measure: factor id, premium, t-stat, P(>0), regime probability, warning severity, changed, last date"),
         Binding("o", "reverse", "Reverse order", show=False, tooltip="Reverse the sort order"),
         Binding("w", "only_warnings", "Cautions only", show=False, tooltip="Show only factors with a caution or an alert (toggle)"),
-        Binding("c", "only_changed", "Changed only", show=False, tooltip="Show only factors changed since the last review (toggle)"),
+        Binding("c", "only_changed", "Changed only", show=False, tooltip="Show only factors with a material change (*) since the last review (toggle)"),
         Binding("t", "toggle_stat", "t or P(>0)", show=False, tooltip="Narrow board: show the t-stat or P(premium > 0) (the wide board shows both)"),
         Binding("m", "mark_reviewed", "Reviewed", tooltip="Mark the board reviewed (asks first); * then marks what changes after this moment"),
         Binding("r", "refit", "Refit", tooltip="Refit every factor's models in the background (asks first)"),
@@ -299,7 +301,7 @@ class BoardScreen(Screen):
         if self.only_warnings:
             rows = [r for r in rows if r.worst >= 2]
         if self.only_changed:
-            rows = [r for r in rows if r.changes]
+            rows = [r for r in rows if fmt.material_changes(r.changes)]
         return sort_rows(rows, self.sort, self.reverse)
 
     def _cells(self, r: BoardRow) -> dict[str, object]:

@@ -7,6 +7,7 @@ terminal's colours: ``!!`` alert, ``!`` caution, ``i`` info.
 from __future__ import annotations
 
 import math
+import re
 from datetime import date, datetime
 
 from tracker.service.report import SEVERITY_NAMES, ordered_codes, severity_of
@@ -14,7 +15,9 @@ from tracker.service.views import regime_name as regime_name_of
 
 SEVERITY_MARKS = {0: " ", 1: "i", 2: "!", 3: "!!"}
 SEVERITY_STYLES = {0: "", 1: "dim", 2: "bold yellow", 3: "bold red"}
-CHANGED_MARK = "*"
+CHANGED_MARK = "*"          # something material changed since the review
+ROWS_MARK = "+"             # only new rows arrived since the review
+_ROWS_ONLY = re.compile(r"^[+-]\d+ rows?$")
 
 #: Short names for the narrow board; the full name is shown in the row summary.
 _SHORT_REGIME = {"calm": "calm", "mild": "mild", "choppy": "chop", "turbulent": "turb", "stressed": "strs"}
@@ -113,3 +116,14 @@ def code_with_severity(code: str) -> str:
 
 def periods_unit(frequency: str) -> str:
     return "months" if frequency == "monthly" else "trading days"
+
+
+def material_changes(changes) -> list[str]:
+    """Changes other than new rows arriving (regime, sign, band, warnings, revisions)."""
+    return [c for c in changes if not _ROWS_ONLY.match(c)]
+
+
+def change_mark(changes) -> str:
+    if material_changes(changes):
+        return CHANGED_MARK
+    return ROWS_MARK if changes else ""

@@ -139,7 +139,9 @@ class HelpScreen(Screen):
 
     @staticmethod
     def _marks() -> Text:
-        return Text(f"{fmt.CHANGED_MARK}  changed since the last review (what changed is under the table)\n"
+        return Text(f"{fmt.CHANGED_MARK}  changed since the last review: regime, premium sign, band and zero, warnings or "
+                    "revised data (what changed is under the table)\n"
+                    f"{fmt.ROWS_MARK}  only new rows since the last review\n"
                     "!! alert    ! caution    i info   (the warning column; colour repeats the mark)\n"
                     "A dim 90% band contains zero: the premium cannot be told apart from zero at that level.")
 

@@ -210,7 +210,7 @@ class LiveLoop:
             self.on_activity(f"applying {len(waiting)} drop file(s)", 0, 0, True)
         outcomes = self.ingest(self.store, self.config) or []
         for o in outcomes:
-            report.drops.append(o.summary() if hasattr(o, "summary") else str(o))
+            report.drops.append(_short(o))
             if getattr(o, "outcome", "") == "applied":
                 report.applied += 1
                 self._need_update = True
@@ -245,3 +245,15 @@ class LiveLoop:
         else:
             self._need_update = False
             self._updated_data_version = version
+
+
+def _short(outcome) -> str:
+    """One short line for a notification; the inbox screen has the whole story."""
+    kind = getattr(outcome, "outcome", "?")
+    line = f"{kind} {getattr(outcome, 'file_name', '?')}"
+    if kind == "rejected" and getattr(outcome, "reason", None):
+        line += f": {outcome.reason}"
+    elif kind == "applied":
+        rows = sum(getattr(outcome, "rows_written", {}).values()) if hasattr(outcome, "rows_written") else 0
+        line += f": {rows} rows, {getattr(outcome, 'n_revisions', 0)} revision(s)"
+    return line
