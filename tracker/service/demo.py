@@ -39,7 +39,9 @@ class DemoReplay:
         folder = self.inbox
         seen = {p.name for sub in ("", "applied", "rejected", "processing")
                 for p in ((folder / sub).iterdir() if (folder / sub).is_dir() else [])}
-        return [d for d in days if (last is None or d.date() > last) and demo_drop_name(d) not in seen]
+        # claims in processing/ carry a suffix after the name: match on the prefix
+        return [d for d in days if (last is None or d.date() > last)
+                and not any(n.startswith(demo_drop_name(d)) for n in seen)]
 
     def drop_one(self, day) -> Path:
         from tracker.seed_db.scenario import drop_file_text
