@@ -24,6 +24,7 @@ from __future__ import annotations
 import json
 import multiprocessing
 import os
+import sys
 import threading
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -50,10 +51,12 @@ class EstimationCancelled(Exception):
 class CancellableExecutor:
     """Runs refits in local worker processes and stops them when ``stop`` is set.
 
-    Same contract as :class:`tracker.service.executor.LocalProcessExecutor` (results in
-    input order), but the pool is terminated as soon as ``stop`` is set, and processes
-    come from a fork server: forking the UI process itself, which runs several threads,
-    could copy a lock some other thread holds.
+    Same contract and start method as :class:`tracker.service.executor.LocalProcessExecutor`
+    (forked local processes, results in input order), but the pool is terminated as soon
+    as ``stop`` is set, and each worker sends its output to the null device: the terminal
+    belongs to the UI, and a warning printed by a fit would scribble over the screen.
+    (Spawned or fork-server workers are not an option inside Textual: starting them asks
+    for ``sys.stderr.fileno()``, which Textual's print capture answers with -1.)
     """
 
     def __init__(self, stop: threading.Event, workers: int | None = None, poll_s: float = 0.2) -> None:
@@ -68,9 +71,8 @@ class CancellableExecutor:
                 self._check()
                 yield fn(item)
             return
-        ctx = multiprocessing.get_context("forkserver")
-        ctx.set_forkserver_preload(["tracker.service.factor_models"])
-        pool = ctx.Pool(min(self.workers, len(items)))
+        ctx = multiprocessing.get_context("fork")
+        pool = ctx.Pool(min(self.workers, len(items)), initializer=_quiet_worker)
         try:
             results = pool.imap(fn, items)
             for _ in items:
@@ -90,6 +92,13 @@ class CancellableExecutor:
     def _check(self) -> None:
         if self.stop.is_set():
             raise EstimationCancelled()
+
+
+def _quiet_worker() -> None:
+    devnull = os.open(os.devnull, os.O_WRONLY)
+    os.dup2(devnull, 1)
+    os.dup2(devnull, 2)
+    sys.stdout = sys.stderr = open(os.devnull, "w")  # noqa: SIM115 - lives as long as the worker
 
 
 def board_fingerprint(board: Board) -> str:
