@@ -19,17 +19,22 @@ WITH last_p AS (
     WHERE w.superseded_at IS NULL GROUP BY w.subject_id
 ), data AS (
     SELECT factor_id, count(*) AS n_obs, max(date) AS last_date FROM factor_returns GROUP BY factor_id
+), fit AS (
+    SELECT subject_id, status AS fit_status, message AS fit_message FROM model_fits
+    WHERE is_current AND model = 'premium'
 )
 SELECT f.factor_id, f.label, f.frequency, f.is_new, d.n_obs, d.last_date,
        p.date AS estimate_date, p.premium, p.premium_sd, p.premium_ann, p.premium_ann_sd,
        p.regime_premium, p.regime_premium_sd, p.sharpe_ann, p.vol_forecast, p.snr,
        r.regime, r.probability AS regime_prob, r.n_regimes, r.filtered AS regime_probs,
-       coalesce(c.codes, '') AS codes, coalesce(c.worst, 0) AS worst
+       coalesce(c.codes, '') AS codes, coalesce(c.worst, 0) AS worst,
+       coalesce(fit.fit_status, 'not estimated') AS fit_status, coalesce(fit.fit_message, '') AS fit_message
 FROM factors f
 LEFT JOIN data d USING (factor_id)
 LEFT JOIN last_p p USING (factor_id)
 LEFT JOIN last_r r ON r.subject_id = f.factor_id
 LEFT JOIN codes c ON c.subject_id = f.factor_id
+LEFT JOIN fit ON fit.subject_id = f.factor_id
 ORDER BY f.factor_id;
 
 -- name: market_latest

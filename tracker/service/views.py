@@ -72,6 +72,8 @@ class BoardRow:
     regime_prob: float
     codes: tuple[str, ...]
     worst: int                     # 0 none, 1 info, 2 caution, 3 alert
+    fit_status: str = "not estimated"  # premium model: ok, too_little_data, not_converged, ...
+    fit_message: str = ""
     changes: tuple[str, ...] = ()  # what changed since the last review
 
     @property
@@ -143,6 +145,7 @@ def _row(r: dict, ppy: int) -> BoardRow:
         t_stat=t, p_positive=float(norm.cdf(t)) if math.isfinite(t) else float("nan"),
         sharpe_ann=_f(r["sharpe_ann"]), regime=regime, n_regimes=n_reg,
         regime_prob=_f(r["regime_prob"]), codes=codes, worst=int(r["worst"] or 0),
+        fit_status=str(r["fit_status"]), fit_message=str(r["fit_message"]),
     )
 
 

@@ -1,0 +1,48 @@
+"""A user's own store: empty, fed by drop files, with a series too short to estimate."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pandas as pd
+
+from tracker.ingest import process_inbox
+from tracker.service.estimate import update
+from tracker.service.views import load_board
+
+
+def _drop(inbox, name: str, text: str) -> None:
+    tmp = inbox / f".{name}.tmp"
+    tmp.write_text(text, "utf-8")
+    tmp.rename(inbox / name)
+
+
+def _returns_sql(fid: str, dates, values) -> str:
+    rows = ",\n".join(f"  ('{fid}', DATE '{d:%Y-%m-%d}', {v:.10f})" for d, v in zip(dates, values))
+    return f"INSERT INTO factor_returns VALUES\n{rows};\n"
+
+
+def test_short_series_is_reported_as_too_little_data_never_as_a_number(empty_store):
+    store, config = empty_store
+    inbox = config.inbox_path(store.folder)
+    rng = np.random.default_rng(7)
+    long_dates = pd.bdate_range("2020-01-01", periods=600)
+    short_dates = long_dates[-40:]
+    text = (
+        "INSERT INTO factors (factor_id, label, frequency) VALUES ('LONGF', 'Long history', 'daily'),"
+        " ('SHORTF', 'Short history', 'daily');\n"
+        + _returns_sql("LONGF", long_dates, rng.normal(3e-4, 0.008, len(long_dates)))
+        + _returns_sql("SHORTF", short_dates, rng.normal(0.0, 0.006, len(short_dates)))
+    )
+    _drop(inbox, "history.sql", text)
+    outcomes = process_inbox(store, config)
+    assert [o.outcome for o in outcomes] == ["applied"]
+    summary = update(store, config)
+    assert summary.kinds["LONGF"] == "backfill" and summary.kinds["SHORTF"] == "backfill"
+    rows = {r.factor_id: r for r in load_board(store, config).rows}
+    assert rows["LONGF"].fit_status == "ok" and math.isfinite(rows["LONGF"].premium_ann)
+    short = rows["SHORTF"]
+    assert short.fit_status == "too_little_data"
+    assert not math.isfinite(short.premium_ann)  # no number is shown for it
+    assert "FIT_FAILED" in short.codes
