@@ -272,6 +272,8 @@ def _update_locked(store, config, refit, only, progress, executor) -> RunSummary
 
     market = market_mod.run_market(inp, config, refit_all=refit is not None and not refit,
                                    rederive=any(p.kind == "rederive" for p in plans))
+    if not plans and market is None:
+        return RunSummary(kinds={})
     if progress:
         progress(total, total, "writing results")
     rows = _write(store, config, inp, plans, outputs, market, started)

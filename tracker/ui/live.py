@@ -24,6 +24,7 @@ from __future__ import annotations
 import json
 import multiprocessing
 import os
+import signal
 import sys
 import threading
 from collections.abc import Callable
@@ -84,9 +85,12 @@ class CancellableExecutor:
                         continue
                     break
                 yield value
+        except BaseException:
+            pool.terminate()
+            raise
+        else:
             pool.close()
         finally:
-            pool.terminate()
             pool.join()
 
     def _check(self) -> None:
@@ -95,6 +99,15 @@ class CancellableExecutor:
 
 
 def _quiet_worker() -> None:
+    # A forked worker inherits the UI's signal wake-up descriptor: left alone, the SIGTERM
+    # that ends a worker would be read by the UI's event loop as its own and close the app.
+    try:
+        signal.set_wakeup_fd(-1)
+    except (ValueError, OSError):
+        pass
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)
+    signal.signal(signal.SIGHUP, signal.SIG_DFL)
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
     devnull = os.open(os.devnull, os.O_WRONLY)
     os.dup2(devnull, 1)
     os.dup2(devnull, 2)
