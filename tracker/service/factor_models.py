@@ -167,6 +167,19 @@ def _apply_floor(fit_params: dict, q_floor: float) -> tuple[dict, bool]:
     return fit_params, False
 
 
+def usable_variance(vf) -> np.ndarray:
+    """The variance forecasts with the EWMA warm-up rows set missing.
+
+    During the warm-up h is a running mean of a handful of squared returns; one tiny first
+    return gives an h orders of magnitude too small, a huge standardized error next, and
+    the likelihood then buys it back with a large q (seen on the demo's market factor:
+    q 1000 times its value without those rows). Missing h makes the filters skip the rows.
+    """
+    h = np.array(vf.h, dtype=float, copy=True)
+    h[: vf.n_warmup] = np.nan
+    return h
+
+
 def run_factor(task: FactorTask) -> FactorOutput:
     """Fit (if asked) and filter one factor; never raises on bad data."""
     y = np.asarray(task.returns, dtype=float)
@@ -183,7 +196,7 @@ def run_factor(task: FactorTask) -> FactorOutput:
         rec, params[MODEL_VOL] = _vol_fit(task, y)
         fits.append(rec)
     vf = _vol_filter(params[MODEL_VOL], y, states.get(MODEL_VOL))
-    h = vf.h if vf is not None else _nan(n)
+    h = usable_variance(vf) if vf is not None else _nan(n)
     h_next = vf.state.h_next if vf is not None else float("nan")
     if vf is not None:
         states[MODEL_VOL] = vf.state.to_dict()
@@ -279,7 +292,7 @@ def hindsight_premium(params: dict, returns: np.ndarray) -> np.ndarray | None:
     vf = _vol_filter(params[MODEL_VOL], returns, None)
     if vf is None:
         return None
-    sm = smooth_hindsight(LocalLevelParams.from_dict(params[MODEL_PREMIUM]), returns, vf.h)
+    sm = smooth_hindsight(LocalLevelParams.from_dict(params[MODEL_PREMIUM]), returns, usable_variance(vf))
     return sm.mean
 
 
@@ -292,7 +305,7 @@ def refiltered_premium(params: dict, returns: np.ndarray, *, q_scale: float = 1.
         return float("nan"), float("nan")
     p = LocalLevelParams.from_dict(params[MODEL_PREMIUM])
     p = LocalLevelParams(q=p.q * q_scale, c=p.c)
-    flt = filter_local_level(p, returns, vf.h)
+    flt = filter_local_level(p, returns, usable_variance(vf))
     return float(flt.mean[-1]), float(math.sqrt(flt.var[-1]))
 
 

@@ -1,0 +1,41 @@
+"""Per-factor task behaviour that the store-level tests do not isolate."""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+
+from tracker.config import config_from_dict
+from tracker.service.factor_models import FactorTask, drift_floor_q, run_factor
+
+SETTINGS = dataclasses.asdict(config_from_dict({}).models)
+
+
+def _fit(y: np.ndarray) -> dict:
+    dates = np.datetime64("2001-01-01") + np.arange(len(y))
+    out = run_factor(FactorTask("X", "daily", dates, y, SETTINGS, refit=True))
+    return out.params["premium"]
+
+
+def test_warm_up_rows_do_not_inflate_q():
+    # Regression: the EWMA warm-up made h ~ r_0^2 for the first rows; the diffuse start
+    # then pinned the premium to the first return with a tiny variance, and the likelihood
+    # bought that back with a large q (1e-7 here, against a true q of 0). Seeded
+    # simulation with a constant premium: q must stay within 100x the stated floor.
+    rng = np.random.default_rng(11)
+    y = 3e-4 + 0.011 * rng.standard_normal(3000)
+    floor = drift_floor_q(y, "daily", SETTINGS["premium_drift_floor"])
+    for first in (y[0], 5e-6):
+        y2 = y.copy()
+        y2[0] = first
+        assert _fit(y2)["q"] <= 100 * floor
+
+
+def test_drift_floor_matches_its_definition():
+    # q = (d sd / ppy)^2: the premium's annual Sharpe ratio moves by d per sqrt(year).
+    rng = np.random.default_rng(3)
+    y = 0.01 * rng.standard_normal(5000)
+    q = drift_floor_q(y, "daily", 0.05)
+    assert np.isclose(q, (0.05 * np.std(y, ddof=1) / 252) ** 2, rtol=1e-12)
+    assert drift_floor_q(y, "daily", 0.0) == 0.0
