@@ -57,7 +57,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("refit", help="re-estimate model parameters (all factors, or the ones named)")
     p.add_argument("factors", nargs="*", metavar="FACTOR", help="factor ids (default: all)")
-    p.add_argument("--workers", type=int, default=None, help="worker processes (default: all cores)")
+    p.add_argument("--workers", type=int, default=None,
+                   help="local worker processes (default: [service] workers, or the Dask cluster when configured)")
     p.set_defaults(handler=_cmd_refit)
 
     p = sub.add_parser("update", help="bring estimates up to date with the stored data (no refit unless due)")
@@ -183,7 +184,7 @@ def _progress_printer():
 def _cmd_refit(args) -> int:
     store, config = _open(args)
     from tracker.service.estimate import update
-    from tracker.service.executor import LocalProcessExecutor
+    from tracker.service.executor import LocalProcessExecutor, executor_for
 
     known = _factor_ids(store)
     unknown = [f for f in args.factors if f not in known]
@@ -192,7 +193,7 @@ def _cmd_refit(args) -> int:
     if args.workers is not None and args.workers < 1:
         raise UsageError("--workers must be at least 1")
     summary = update(store, config, refit=set(args.factors), progress=_progress_printer(),
-                     executor=LocalProcessExecutor(args.workers))
+                     executor=LocalProcessExecutor(args.workers) if args.workers else executor_for(config))
     print(summary.describe())
     return 0 if not summary.skipped else 1
 

@@ -63,6 +63,12 @@ class AssetSettings:
 
 
 @dataclass(frozen=True)
+class ServiceSettings:
+    workers: int = 2                # local worker processes for refits
+    dask_scheduler: str = "none"    # "none", or a Dask scheduler address such as "tcp://host:8786"
+
+
+@dataclass(frozen=True)
 class UISettings:
     refresh_s: float = 2.0          # how often the UI checks the store for changes
 
@@ -95,6 +101,7 @@ class Config:
     models: ModelSettings = field(default_factory=ModelSettings)
     assets: AssetSettings = field(default_factory=AssetSettings)
     ui: UISettings = field(default_factory=UISettings)
+    service: ServiceSettings = field(default_factory=ServiceSettings)
     warnings: Any = None            # WarningThresholds, filled in by load_config
 
     def inbox_path(self, store_folder: Path) -> Path:
@@ -153,6 +160,7 @@ def config_from_dict(raw: dict[str, Any]) -> Config:
         "models": ModelSettings,
         "assets": AssetSettings,
         "ui": UISettings,
+        "service": ServiceSettings,
     }
     thresholds_cls = _warning_thresholds_type()
     if thresholds_cls is not None:
@@ -195,7 +203,7 @@ def default_config_text() -> str:
         "# section 'Configuration', for what each one does. Delete a key to use the default.",
         "",
     ]
-    for section in ("store", "ingest", "models", "assets", "ui", "warnings"):
+    for section in ("store", "ingest", "models", "assets", "ui", "service", "warnings"):
         obj = getattr(cfg, section)
         if obj is None:
             continue

@@ -38,7 +38,7 @@ import pandas as pd
 
 from tracker.config import Config
 from tracker.estimation import warning_rules as wr
-from tracker.service.executor import Executor, LocalProcessExecutor, SerialExecutor
+from tracker.service.executor import Executor, SerialExecutor, executor_for
 from tracker.service.factor_models import (
     FACTOR_MODELS,
     MODEL_PREMIUM,
@@ -258,7 +258,7 @@ def _update_locked(store, config, refit, only, progress, executor) -> RunSummary
     outputs: dict[str, FactorOutput] = {}
     if progress:
         progress(0, total, "estimating")
-    runner = executor or (LocalProcessExecutor() if len(heavy) > 1 else SerialExecutor())
+    runner = executor or (executor_for(config) if len(heavy) > 1 else SerialExecutor())
     for out in runner.map(run_factor, heavy):
         outputs[out.factor_id] = out
         done += 1

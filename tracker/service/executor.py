@@ -52,3 +52,11 @@ class DaskExecutor:
             futures = client.map(fn, list(items), pure=False)
             for fut in futures:
                 yield fut.result()
+
+
+def executor_for(config) -> Executor:
+    """The executor the configuration asks for: Dask when a scheduler is set, else local processes."""
+    address = config.service.dask_scheduler
+    if address and address != "none":
+        return DaskExecutor(address)
+    return LocalProcessExecutor(config.service.workers)
