@@ -72,6 +72,11 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("watch", help="process the inbox continuously, headless, updating estimates after each file")
     p.set_defaults(handler=_cmd_watch)
 
+    p = sub.add_parser("report", help="print the board, market regime, warnings and asset view (for cron and e-mail)")
+    p.add_argument("--format", choices=("text", "markdown", "csv", "json"), default="text")
+    p.add_argument("--since-review", action="store_true", help="only what changed since the last review")
+    p.set_defaults(handler=_cmd_report)
+
     p = sub.add_parser("export", help="write stored tables as CSV or Parquet files")
     p.add_argument("tables", nargs="*", metavar="TABLE", help="tables to export (default: all readable tables)")
     p.add_argument("--format", choices=("csv", "parquet"), default="csv")
@@ -240,6 +245,14 @@ def _cmd_watch(args) -> int:
 
     estimate()  # catch up with anything applied while nobody was watching
     return watch_command(store, config, lambda m: print(m, flush=True), stop, on_applied=estimate)
+
+
+def _cmd_report(args) -> int:
+    store, config = _open(args)
+    from tracker.service.report import render_report
+
+    sys.stdout.write(render_report(store, config, args.format, since_review=args.since_review))
+    return 0
 
 
 def _factor_ids(store) -> set[str]:

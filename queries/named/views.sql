@@ -13,7 +13,7 @@ WITH last_p AS (
       ON l.subject_id = r.subject_id AND l.d = r.date
     WHERE r.superseded_at IS NULL
 ), codes AS (
-    SELECT w.subject_id, string_agg(w.code, ' ' ORDER BY w.severity DESC, w.code) AS codes,
+    SELECT w.subject_id, string_agg(w.code, ' ' ORDER BY CASE w.severity WHEN 'alert' THEN 0 WHEN 'caution' THEN 1 ELSE 2 END, w.code) AS codes,
            max(CASE w.severity WHEN 'alert' THEN 3 WHEN 'caution' THEN 2 ELSE 1 END) AS worst
     FROM warnings w JOIN last_p p ON p.factor_id = w.subject_id AND p.date = w.date
     WHERE w.superseded_at IS NULL GROUP BY w.subject_id

@@ -49,3 +49,18 @@ def test_assets_view_ties_premia_to_expected_returns(estimated_demo_template):
     assert view.grs_p > 0.01
     assert set(view.fama_macbeth_ann) == set(view.factors)
     assert view.sdf_max_sharpe_ann > 0 and pd.notna(view.sdf_max_sharpe_sample_se_ann)
+
+
+def test_report_carries_the_asset_view(estimated_demo_template):
+    import json
+
+    from tracker.service.report import render_report
+
+    store, config = open_store(estimated_demo_template)
+    doc = json.loads(render_report(store, config, "json"))
+    view = load_assets_view(store, config)
+    assert doc["assets"]["status"] == "ok"
+    got = {r["asset_id"]: r["expected_ann"] for r in doc["assets"]["rows"]}
+    assert got == {r.asset_id: r.expected_ann for r in view.rows}
+    text = render_report(store, config, "text")
+    assert "GRS test of joint alphas" in text and "Hansen-Jagannathan" in text

@@ -21,6 +21,16 @@ Top level:
 ``drops``                  ``{"pending": int, "rejected": int}`` drop files waiting / rejected
 ``market``                 object, below
 ``factors``                list of objects, below, in factor id order
+``assets``                 the asset view: ``status`` ('ok' or 'unavailable' with ``message``),
+                           ``date``, ``factors``, ``window_rows``, ``rows`` (per asset:
+                           ``expected_ann``, ``expected_se_ann`` (delta method, premium and
+                           exposure uncertainty), ``realised_ann``, ``gap_ann``, ``gap_t``,
+                           ``alpha_ann``, ``alpha_t``, ``exposures`` {factor: {beta, se}}),
+                           ``premia`` {factor: filtered_ann, fama_macbeth_ann,
+                           fama_macbeth_se_ann, inversion_ann}, ``inversion_message``,
+                           ``grs`` {f, p_value}, ``sdf`` {max_sharpe_ann_filtered,
+                           max_sharpe_ann_sample, max_sharpe_ann_sample_se, b,
+                           pricing_errors_ann}
 
 ``market``: ``date`` (ISO date or null), ``regime`` (0-based index, ordered from calmest
 to most volatile, or null), ``regime_label``, ``n_regimes``, ``status`` and ``message``
@@ -100,6 +110,7 @@ def render_report(store: Store, config: Config, fmt: str = "text", since_review:
         rows = [r for r in rows if r.changes]
     warns = _latest_warnings(store, [r.factor_id for r in rows])
     doc = _document(board, rows, warns, since_review)
+    doc["assets"] = _assets(store, config)
     return {"text": _text, "markdown": _markdown, "csv": _csv, "json": _json}[fmt](doc)
 
 
@@ -184,6 +195,58 @@ def _document(board: Board, rows: list[BoardRow], warns: dict, since_review: boo
         "market": _market(board),
         "factors": [_factor(r, warns.get(r.factor_id, [])) for r in rows],
     }
+
+
+def _assets(store: Store, config: Config) -> dict:
+    from tracker.service.assets import load_assets_view
+
+    try:
+        v = load_assets_view(store, config)
+    except Exception as exc:  # the asset view must never take the report down with it
+        return {"status": "unavailable", "message": f"{type(exc).__name__}: {exc}"}
+    if v.status != "ok":
+        return {"status": v.status, "message": v.message}
+    return {
+        "status": "ok", "date": _iso(v.date), "factors": list(v.factors), "window_rows": v.window,
+        "rows": [{"asset_id": r.asset_id, "label": r.label, "expected_ann": _num(r.expected_ann),
+                  "expected_se_ann": _num(r.expected_se_ann), "realised_ann": _num(r.realised_ann),
+                  "gap_ann": _num(r.gap_ann), "gap_t": _num(r.gap_t), "alpha_ann": _num(r.alpha_ann),
+                  "alpha_t": _num(r.alpha_t),
+                  "exposures": {f: {"beta": _num(b), "se": _num(se)} for f, (b, se) in r.exposures.items()}}
+                 for r in v.rows],
+        "premia": {f: {"filtered_ann": _num(v.filtered_premia_ann.get(f)),
+                       "fama_macbeth_ann": _num(v.fama_macbeth_ann.get(f, (None, None))[0]),
+                       "fama_macbeth_se_ann": _num(v.fama_macbeth_ann.get(f, (None, None))[1]),
+                       "inversion_ann": _num(v.inversion_ann.get(f))} for f in v.factors},
+        "inversion_message": v.inversion_message,
+        "grs": {"f": _num(v.grs_f), "p_value": _num(v.grs_p)},
+        "sdf": {"max_sharpe_ann_filtered": _num(v.sdf_max_sharpe_ann),
+                "max_sharpe_ann_sample": _num(v.sdf_max_sharpe_sample_ann),
+                "max_sharpe_ann_sample_se": _num(v.sdf_max_sharpe_sample_se_ann),
+                "b": {f: _num(x) for f, x in v.sdf_b.items()},
+                "pricing_errors_ann": {a: _num(x) for a, x in v.sdf_pricing_errors_ann.items()}},
+    }
+
+
+def _asset_lines(a: dict) -> list[str]:
+    if a.get("status") != "ok":
+        return [f"Assets: not available ({a.get('message', '')})"]
+    lines = [f"Assets on {a['date']}: expected excess return = exposures x filtered premia (annualised), "
+             f"exposures from a {a['window_rows']}-row rolling window",
+             f"  {'Asset':<8} {'Expected':>9} {'sd':>7} {'Realised':>9} {'Gap':>8} {'t(gap)':>7}"]
+    for r in a["rows"]:
+        lines.append(f"  {r['asset_id']:<8} {_p(r['expected_ann'])} {_p(r['expected_se_ann'], signed=False):>7}"
+                     f" {_p(r['realised_ann'])} {_p(r['gap_ann'])} {_f(r['gap_t'], signed=True)}")
+    g, sd = a["grs"], a["sdf"]
+    lines.append(f"  GRS test of joint alphas (Gibbons, Ross & Shanken 1989): F {_f(g['f'])}, p {_f(g['p_value'], 3)}")
+    lines.append(f"  Maximal Sharpe ratio of the factor span (Hansen-Jagannathan bound), annual: "
+                 f"{_f(sd['max_sharpe_ann_filtered'])} from filtered premia; "
+                 f"{_f(sd['max_sharpe_ann_sample'])} (sd {_f(sd['max_sharpe_ann_sample_se'])}) from sample means")
+    lines.append("  Premia per year: factor  filtered  Fama-MacBeth (sd)  inversion")
+    for f, p in a["premia"].items():
+        lines.append(f"    {f:<8} {_p(p['filtered_ann'])} {_p(p['fama_macbeth_ann'])} ({_p(p['fama_macbeth_se_ann'], signed=False)})"
+                     f" {_p(p['inversion_ann'])}")
+    return lines
 
 
 # --------------------------------------------------------------------------- formats
@@ -299,6 +362,8 @@ def _text(doc: dict) -> str:
             lines += _warning_lines(f, "    ")
     if not any_w:
         lines.append("  none")
+    if "assets" in doc:
+        lines += [""] + _asset_lines(doc["assets"])
     lines += [""] + textwrap.wrap(doc["caution"], TEXT_WIDTH) + [""]
     return "\n".join(lines)
 
@@ -329,6 +394,8 @@ def _markdown(doc: dict) -> str:
         lines.append("")
     if not any_w:
         lines += ["None.", ""]
+    if "assets" in doc:
+        lines += ["## Assets", "", "```"] + _asset_lines(doc["assets"]) + ["```", ""]
     lines += [f"> {doc['caution']}", ""]
     return "\n".join(lines)
 

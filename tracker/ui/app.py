@@ -162,8 +162,9 @@ class TrackerApp(App):
         events = []
         if message.applied or message.rejected:
             events.append(f"{message.applied} drop file(s) applied, {message.rejected} rejected")
-            for line in message.drops:
-                self.notify(line, severity="warning" if line.startswith("rejected") else "information", timeout=8)
+            for line in message.drops:           # applied files show on the activity line; rejections need a look
+                if line.startswith("rejected"):
+                    self.notify(f"{line} (i: inbox)", severity="warning", timeout=12)
         if message.estimation and message.estimation != "estimates are up to date":
             events.append(message.estimation)
         if events:

@@ -9,10 +9,6 @@ does not scroll. The table is rebuilt only when the user changes what the column
 
 from __future__ import annotations
 
-import math
-from collections.abc import Callable
-from dataclasses import dataclass
-
 from rich.text import Text
 from textual import on, work
 from textual.app import ComposeResult
@@ -21,196 +17,23 @@ from textual.containers import Horizontal
 from textual.screen import Screen
 from textual.widgets import DataTable, Footer, Input, Static
 
-from tracker.service.report import ordered_codes, severity_of, warning_message
+from tracker.service.report import ordered_codes, severity_of
 from tracker.service.views import Board, BoardRow, mark_reviewed
 from tracker.ui import formatting as fmt
+from tracker.ui.board_rows import (
+    SORTS,
+    Layout,
+    cell_text,
+    choose_layout,
+    market_text,
+    plain,
+    row_matches,
+    row_summary,
+    sort_rows,
+    store_text,
+)
 from tracker.ui.messages import ReviewMarked
 from tracker.ui.widgets import ActivityLine, CautionLine
-
-WIDE_FROM = 120          # terminal columns from which the wide layout is used
-
-
-@dataclass(frozen=True)
-class SortKey:
-    key: str
-    title: str
-    descending: bool
-    value: Callable[[BoardRow], object]
-
-
-def _num(x: float) -> float:
-    return x if isinstance(x, (int, float)) and math.isfinite(x) else math.nan
-
-
-SORTS = (
-    SortKey("factor", "factor id", False, lambda r: r.factor_id),
-    SortKey("premium", "premium", True, lambda r: _num(r.premium_ann)),
-    SortKey("t", "t-stat", True, lambda r: _num(r.t_stat)),
-    SortKey("ppos", "P(>0)", True, lambda r: _num(r.p_positive)),
-    SortKey("regime", "regime probability", True, lambda r: _num(r.regime_prob)),
-    SortKey("severity", "warning severity", True, lambda r: r.worst),
-    SortKey("changed", "changed since review", True,
-            lambda r: 2 * len(fmt.material_changes(r.changes)) + (1 if r.changes else 0)),
-    SortKey("last", "last data date", False, lambda r: r.last_date.toordinal() if r.last_date else math.nan),
-)
-
-
-def sort_rows(rows: list[BoardRow], sort: SortKey, reverse: bool) -> list[BoardRow]:
-    """Rows in display order; missing numbers last whichever the direction, ties by id."""
-    desc = sort.descending != reverse
-
-    def key(r: BoardRow):
-        v = sort.value(r)
-        missing = isinstance(v, float) and math.isnan(v)
-        if isinstance(v, str):
-            return (missing, v, r.factor_id)
-        return (missing, 0.0 if missing else (-v if desc else v), r.factor_id)
-
-    out = sorted(rows, key=key)
-    if isinstance(sort.value(rows[0]) if rows else 0, str) and desc:
-        out.reverse()
-    return out
-
-
-def row_matches(r: BoardRow, query: str) -> bool:
-    q = query.strip().lower()
-    if not q:
-        return True
-    hay = " ".join([r.factor_id, r.label, r.regime_label, " ".join(r.codes), " ".join(r.changes)]).lower()
-    return all(part in hay for part in q.split())
-
-
-# ------------------------------------------------------------------------- layout
-
-@dataclass(frozen=True)
-class Layout:
-    wide: bool
-    stat: str                                   # 't' or 'ppos' on the narrow board
-    columns: tuple[tuple[str, str], ...]        # (key, heading)
-    warn_width: int
-    changes_width: int
-
-
-def choose_layout(width: int, rows: list[BoardRow], stat: str) -> Layout:
-    wide = width >= WIDE_FROM
-    if wide:
-        cols = (("chg", "*"), ("factor", "Factor"), ("name", "Name"), ("last", "Last date"), ("regime", "Regime"),
-                ("prem", "Premium/yr"), ("band", "90% band"), ("t", "t"), ("ppos", "P(>0)"),
-                ("sharpe", "Sharpe"), ("warn", "Warnings"), ("changes", "Changed since review"))
-    else:
-        cols = (("chg", "*"), ("factor", "Factor"), ("last", "Last date"), ("regime", "Regime"),
-                ("prem", "Prem/yr"), ("band", "90% band/yr"), (stat, "t" if stat == "t" else "P>0"),
-                ("warn", "Warnings"))
-    probe = Layout(wide, stat, cols, 0, 0)
-    fixed = 0
-    for key, head in cols:
-        if key in ("warn", "changes"):
-            continue
-        fixed += max([len(head)] + [len(_plain(cell_text(r, key, probe))) for r in rows]) + 2
-    room = max(8, width - fixed - 2 * (2 if wide else 1) - 1)   # cell padding and the scrollbar
-    if wide:
-        longest = max([len(fmt.codes_cell(r.codes, r.worst, None)) for r in rows] + [8])
-        warn = min(longest, max(8, room // 2))
-        return Layout(wide, stat, cols, warn, max(10, room - warn))
-    return Layout(wide, stat, cols, room, 0)
-
-
-def _plain(x) -> str:
-    return x.plain if isinstance(x, Text) else str(x)
-
-
-def cell_text(r: BoardRow, key: str, layout: Layout) -> Text | str:
-    """The text of one board cell (numbers right-aligned; severity by mark and colour)."""
-    right = "right"
-    if key == "chg":
-        return Text(fmt.change_mark(r.changes), style="bold")
-    if key == "factor":
-        return r.factor_id
-    if key == "name":
-        return r.label if len(r.label) <= 24 else r.label[:23] + "…"
-    if key == "last":
-        return fmt.day(r.last_date)
-    if key == "regime":
-        return fmt.regime_cell(r.regime_label, r.regime_prob, short=not layout.wide)
-    if key == "prem":
-        return Text(fmt.pct(r.premium_ann), justify=right)
-    if key == "band":
-        return Text(fmt.band(r.band_lo, r.band_hi, 2 if layout.wide else 1), justify=right,
-                    style="dim" if r.band_contains_zero else "")
-    if key == "t":
-        return Text(fmt.num(r.t_stat, signed=True), justify=right)
-    if key == "ppos":
-        return Text(fmt.num(r.p_positive, 3), justify=right)
-    if key == "sharpe":
-        return Text(fmt.num(r.sharpe_ann, signed=True), justify=right)
-    if key == "warn":
-        return Text(fmt.codes_cell(r.codes, r.worst, layout.warn_width), style=fmt.SEVERITY_STYLES.get(r.worst, ""))
-    if key == "changes":
-        s = "; ".join(r.changes)
-        return s if len(s) <= layout.changes_width else s[: max(0, layout.changes_width - 1)] + "…"
-    return ""
-
-
-# ------------------------------------------------------------------------- header text
-
-def _fit(width: int, *candidates: str) -> str:
-    for c in candidates:
-        if len(c) <= width:
-            return c
-    return candidates[-1]
-
-
-def market_text(board: Board, width: int) -> str:
-    m = board.market
-    if m.regime is None:
-        return _fit(width, f"Market regime: not estimated yet ({m.message})", "Market regime: not estimated yet")
-    probs = [(fmt.regime_name_of(i, m.n_regimes), p) for i, p in enumerate(m.probabilities)]
-    top = m.probabilities[m.regime] if m.regime < len(m.probabilities) else math.nan
-    dur = m.durations[m.regime] if m.regime < len(m.durations) else math.nan
-    long_probs = ", ".join(f"{n} {fmt.prob(p)}" for n, p in probs)
-    return _fit(
-        width,
-        f"Market regime on {fmt.day(m.date)}: {m.label}, p {fmt.prob(top)} ({long_probs}); "
-        f"expected duration {fmt.num(dur, 0)} {fmt.periods_unit('daily')}",
-        f"Market regime: {m.label}, p {fmt.prob(top)} ({long_probs})",
-        f"Market: {m.label} ({' '.join(f'{n[:5]} {fmt.prob(p)}' for n, p in probs)})",
-    )
-
-
-def store_text(board: Board, width: int) -> str:
-    h = board.header
-    drops = f"{h.pending_drops} waiting, {h.rejected_drops} rejected"
-    return _fit(
-        width,
-        f"Data through {fmt.day(h.last_data_date)} · estimates refreshed {fmt.stamp(h.last_refresh)} · "
-        f"drop files: {drops} · last review {fmt.stamp(h.last_review) if h.last_review else 'none'}",
-        f"Data through {fmt.day(h.last_data_date)} · estimated {fmt.stamp(h.last_refresh)} · drops {drops}",
-        f"Data to {fmt.day(h.last_data_date)} · estimated {fmt.stamp(h.last_refresh)} · drops {drops}",
-    )
-
-
-def row_summary(r: BoardRow, board: Board) -> list[str]:
-    """Three lines about the highlighted factor, below the table: what the narrow board leaves out."""
-    new = " (newly proposed)" if r.is_new else ""
-    line1 = (f"{r.factor_id} {r.label}{new} · regime {r.regime_label} p {fmt.prob(r.regime_prob)} · "
-             f"t {fmt.num(r.t_stat, signed=True)} · P(>0) {fmt.num(r.p_positive, 3)} · "
-             f"Sharpe {fmt.num(r.sharpe_ann, signed=True)} · {r.n_obs} obs · estimate of {fmt.day(r.estimate_date)}")
-    codes = ordered_codes(r.codes)
-    if codes:
-        first = codes[0]
-        more = f" (+{len(codes) - 1} more; Enter for all)" if len(codes) > 1 else ""
-        line2 = f"{fmt.severity_mark(severity_of(first))} {first}: {warning_message(first)}{more}"
-    else:
-        line2 = "No warnings on the latest estimate."
-    if board.header.last_review is None:
-        line3 = "No review yet: press m to mark the board reviewed; changes are shown from then on."
-    elif r.changes:
-        line3 = (f"{fmt.change_mark(r.changes)} since the review of {fmt.stamp(board.header.last_review)}: "
-                 f"{'; '.join(r.changes)}")
-    else:
-        line3 = f"No change since the review of {fmt.stamp(board.header.last_review)}."
-    return [line1, line2, line3]
-
 
 # ------------------------------------------------------------------------- the screen
 
@@ -234,7 +57,9 @@ class BoardScreen(Screen):
         Binding("t", "toggle_stat", "t or P(>0)", show=False, tooltip="Narrow board: show the t-stat or P(premium > 0) (the wide board shows both)"),
         Binding("m", "mark_reviewed", "Reviewed", tooltip="Mark the board reviewed (asks first); * then marks what changes after this moment"),
         Binding("r", "refit", "Refit", tooltip="Refit every factor's models in the background (asks first)"),
-        Binding("escape", "clear_filter", "Clear filter", show=False, tooltip="Clear the filter and the toggles"),
+        # priority: Escape must reach the screen even while the filter box has the focus
+        Binding("escape", "clear_filter", "Clear filter", show=False, priority=True,
+                tooltip="Clear the filter and the toggles"),
     ]
 
     def __init__(self) -> None:
@@ -344,7 +169,7 @@ class BoardScreen(Screen):
             self._shown[r.factor_id] = cells
         if [row.key.value for row in table.ordered_rows] != desired:
             order = {k: i for i, k in enumerate(desired)}
-            table.sort("factor", key=lambda cell: order.get(_plain(cell), len(order)))
+            table.sort("factor", key=lambda cell: order.get(plain(cell)[1:], len(order)))
         if keep is not None and keep in table.rows:
             index = table.get_row_index(keep)
             if index != table.cursor_row:
@@ -507,7 +332,7 @@ class BoardScreen(Screen):
         from tracker.ui.confirm import ConfirmScreen
 
         question = ("Refit every factor's models now? Parameters are re-estimated on the whole "
-                    "history in the background (about a minute on the demo store); stored past "
+                    "history in the background (under a minute on the demo store); stored past "
                     "estimates are kept as they were known. The board stays usable meanwhile.")
         self.app.push_screen(ConfirmScreen("Refit all factors", question), self._confirmed_refit)
 

@@ -101,7 +101,8 @@ def warnings_text(d: FactorDetail) -> Table:
         body.append("\n" + " · ".join(nums), style="dim")
         h = hist.get(w["code"])
         if h is not None:
-            body.append(f"\nflagged on {int(h['n_days'])} {unit} in this window, first "
+            n = int(h["n_days"])
+            body.append(f"\nflagged on {n} {unit if n != 1 else unit.rstrip('s')} in this window, first "
                         f"{fmt.day(_as_date(h['first_date']))}", style="dim")
         g.add_row(Text(f"{fmt.severity_mark(sev):>2}", style=style), body)
     earlier = [h for c, h in sorted(hist.items()) if c not in current]
@@ -271,8 +272,18 @@ class DetailScreen(Screen):
         self.query_one("#detail-title", Static).update(
             Text.assemble((f"{self.factor_id}", "bold"), f" {label} · window {name}{span} · {hs} · {pos}"))
 
+    def _chart_rows(self) -> tuple[int, int]:
+        """Plot rows for the premium and return charts: 8 and 5 at 24 lines, more when taller."""
+        spare = max(0, self.app.size.height - 24)
+        return PREMIUM_ROWS + min(8, spare // 3), RETURN_ROWS + min(5, spare // 5)
+
+    def on_resize(self) -> None:
+        if self.detail is not None:
+            self._draw_detail()
+
     def _draw_detail(self) -> None:
         d = self.detail
+        prem_rows, ret_rows = self._chart_rows()
         self._title()
         x_labels = (fmt.day(_as_date(d.dates[0])), fmt.day(_as_date(d.dates[-1]))) if len(d.dates) else ("", "")
         has_est = bool(np.isfinite(d.premium_ann).any())
@@ -282,8 +293,8 @@ class DetailScreen(Screen):
         chart = self.query_one("#premium-chart", Chart)
         if has_est:
             band = (d.band_lo, d.band_hi)
-            chart.draw(lambda w: line_chart(d.premium_ann, width=w, height=PREMIUM_ROWS, band=band, marks=marks,
-                                            label=_pct_axis, x_labels=x_labels), PREMIUM_ROWS + 1)
+            chart.draw(lambda w: line_chart(d.premium_ann, width=w, height=prem_rows, band=band, marks=marks,
+                                            label=_pct_axis, x_labels=x_labels), prem_rows + 1)
         else:
             chart.draw(lambda w: [Text("No estimates yet: they appear when estimation has run.", style="dim")], 1)
         legend = Text.assemble((LINE_GLYPH, "bold cyan"), " filtered (real time)  ",
@@ -297,18 +308,18 @@ class DetailScreen(Screen):
         self.query_one("#premium-legend", Static).update(legend)
         p, lo, hi = _last_finite(d.premium_ann), _last_finite(d.band_lo), _last_finite(d.band_hi)
         rp = _last_finite(d.regime_premium_ann)
-        latest = (f"Latest {fmt.pct(p)}/yr, band {fmt.pct(lo)}..{fmt.pct(hi)}; "
-                  f"regime-aware (Kim filter) {fmt.pct(rp)}/yr")
+        latest = (f"Latest {fmt.per_year(p)}, band {fmt.pct(lo)}..{fmt.pct(hi)}; "
+                  f"regime-aware (Kim filter) {fmt.per_year(rp)}")
         if marks is not None:
-            latest += f"; HINDSIGHT {fmt.pct(_last_finite(marks))}/yr"
+            latest += f"; HINDSIGHT {fmt.per_year(_last_finite(marks))}"
         self.query_one("#premium-latest", Static).update(latest)
 
         rets = np.asarray(d.returns, dtype=float)
         cum = np.cumprod(1.0 + np.nan_to_num(rets)) - 1.0 if rets.size else rets
         if rets.size and np.isfinite(rets).any():
             self.query_one("#returns-chart", Chart).draw(
-                lambda w: line_chart(cum, width=w, height=RETURN_ROWS, label=_pct_axis, x_labels=x_labels),
-                RETURN_ROWS + 1)
+                lambda w: line_chart(cum, width=w, height=ret_rows, label=_pct_axis, x_labels=x_labels),
+                ret_rows + 1)
             ppy = PERIODS_PER_YEAR.get(d.frequency, 252)
             ok = rets[np.isfinite(rets)]
             note = (f"{ok.size} rows; mean {fmt.pct(ok.mean() * ppy)}/yr, vol "

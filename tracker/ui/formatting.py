@@ -14,7 +14,7 @@ from tracker.service.report import SEVERITY_NAMES, ordered_codes, severity_of
 from tracker.service.views import regime_name as regime_name_of
 
 SEVERITY_MARKS = {0: " ", 1: "i", 2: "!", 3: "!!"}
-SEVERITY_STYLES = {0: "", 1: "dim", 2: "bold yellow", 3: "bold red"}
+SEVERITY_STYLES = {0: "", 1: "dim", 2: "bold #d7af00", 3: "bold #ff3030"}
 CHANGED_MARK = "*"          # something material changed since the review
 ROWS_MARK = "+"             # only new rows arrived since the review
 _ROWS_ONLY = re.compile(r"^[+-]\d+ rows?$")
@@ -35,6 +35,11 @@ def pct(x, digits: int = 2, *, signed: bool = True) -> str:
     if not finite(x):
         return "-"
     return f"{float(x) * 100:{'+' if signed else ''}.{digits}f}%"
+
+
+def per_year(x, digits: int = 2) -> str:
+    """'+6.26%/yr', or 'n/a' when the number is missing."""
+    return "n/a" if not finite(x) else f"{pct(x, digits)}/yr"
 
 
 def band(lo, hi, digits: int = 1) -> str:
@@ -104,6 +109,9 @@ def codes_cell(codes, worst: int, width: int | None) -> str:
         tail = f" +{rest}" if rest else ""
         if len(out) + 1 + len(code) + len(tail) <= width:
             out += " " + code
+        elif i == 0:                     # never only a count: the worst code, shortened
+            room = max(1, width - len(out) - 1 - len(tail) - 1)
+            return f"{out} {code[:room]}…{tail}"
         else:
             return f"{out} +{len(ordered) - i}"
     return out

@@ -143,7 +143,9 @@ class HelpScreen(Screen):
                     "revised data (what changed is under the table)\n"
                     f"{fmt.ROWS_MARK}  only new rows since the last review\n"
                     "!! alert    ! caution    i info   (the warning column; colour repeats the mark)\n"
-                    "A dim 90% band contains zero: the premium cannot be told apart from zero at that level.")
+                    "A dim 90% band contains zero: the premium cannot be told apart from zero at that level.\n"
+                    "Charts: ⣿ the line, ░ the 90% band, • the HINDSIGHT path, ┈ zero; ≥ or ≤ on an axis "
+                    "label: some values lie beyond it and are drawn on the edge row.")
 
     @staticmethod
     def _glossary() -> Text:

@@ -16,8 +16,20 @@ from tracker.ui.messages import DropsLoaded
 from tracker.ui.widgets import ActivityLine
 
 OUTCOME_MARKS = {"applied": ("ok", ""), "duplicate": ("=", "dim"), "rejected": ("x", "bold red")}
+#: (key, heading, width): fixed widths, so the table fits 80 columns and never jumps as files arrive.
+COLUMNS = (("id", "Drop", 4), ("file", "File", 20), ("outcome", "Outcome", 11), ("rows", "Rows", 5),
+           ("rev", "Rev.", 4), ("warn", "Warn.", 5), ("at", "Processed", 16))
 TABLE_SHORT = {"factor_returns": "factor", "asset_returns": "asset", "risk_free": "risk-free",
                "factors": "factor decl.", "assets": "asset decl."}
+
+
+def _plain(x) -> str:
+    return x.plain if isinstance(x, Text) else str(x)
+
+
+def inbox_location(app) -> str:
+    """Where upstream jobs write drop files (shown so a reader knows where to look)."""
+    return str(app.config.inbox_path(app.store.folder))
 
 
 def rows_total(e: DropEntry) -> int:
@@ -37,8 +49,9 @@ def drop_details(e: DropEntry) -> Text:
     out.append(f" · drop {e.drop_id} · {e.outcome} · processed {fmt.stamp(e.processed_at)}\n")
     if e.reason:
         out.append(f"Reason: {e.reason}\n", style=style or "bold")
-    if e.rows:
-        out.append("Rows written: " + ", ".join(f"{TABLE_SHORT.get(t, t)} {n}" for t, n in e.rows.items())
+    written = {t: n for t, n in e.rows.items() if n}
+    if written:
+        out.append("Rows written: " + ", ".join(f"{TABLE_SHORT.get(t, t)} {n}" for t, n in written.items())
                    + f"; {e.n_revisions} revision(s) of stored values\n")
     elif e.outcome == "applied":
         out.append(f"No rows written; {e.n_revisions} revision(s)\n")
@@ -60,7 +73,7 @@ def drop_details(e: DropEntry) -> Text:
             line += f" [{where}]"
         if nums:
             line += f" ({', '.join(nums)})"
-        out.append(line + "\n", style="yellow")
+        out.append(line + "\n", style="#d7af00")
     if len(e.warnings) > 6:
         out.append(f"  … {len(e.warnings) - 6} more listed in the receipt beside the file\n", style="dim")
     return out
@@ -90,9 +103,9 @@ class InboxScreen(Screen):
 
     def on_mount(self) -> None:
         t = self.table
-        for key, head in (("id", "Drop"), ("file", "File"), ("outcome", "Outcome"), ("rows", "Rows"),
-                          ("rev", "Revised"), ("warn", "Warnings"), ("at", "Processed")):
-            t.add_column(Text(head, justify="right") if key in ("id", "rows", "rev", "warn") else head, key=key)
+        for key, head, width in COLUMNS:
+            t.add_column(Text(head, justify="right") if key in ("id", "rows", "rev", "warn") else head,
+                         key=key, width=width)
         t.focus()
         board = getattr(self.app, "board", None)
         self._header_seen = board.header if board else None
@@ -117,7 +130,7 @@ class InboxScreen(Screen):
         if message.error:
             title.update(Text(f"Cannot read the drop files: {message.error}", style="bold red"))
             return
-        inbox = self.app.config.inbox_path(self.app.store.folder)
+        inbox = inbox_location(self.app)
         waiting = (f"{len(message.pending)} waiting: {', '.join(message.pending[:4])}"
                    + (" …" if len(message.pending) > 4 else "")) if message.pending else "none waiting"
         title.update(Text.assemble(("Drop files", "bold"), f" · {len(message.entries)} recorded · {waiting} · inbox {inbox}"))
@@ -128,11 +141,11 @@ class InboxScreen(Screen):
             key = str(e.drop_id)
             if key in t.rows:
                 for col, value in zip(("id", "file", "outcome", "rows", "rev", "warn", "at"), cells):
-                    t.update_cell(key, col, value, update_width=True)
+                    t.update_cell(key, col, value)
             else:
                 t.add_row(*cells, key=key)
             self.entries[e.drop_id] = e
-        t.sort("id", key=lambda cell: -int(str(cell)))
+        t.sort("id", key=lambda cell: -int(_plain(cell)))
         if keep is not None and keep in t.rows:
             idx = t.get_row_index(keep)
             if idx != t.cursor_row:
@@ -142,12 +155,12 @@ class InboxScreen(Screen):
     @staticmethod
     def _cells(e: DropEntry) -> tuple:
         mark, style = OUTCOME_MARKS.get(e.outcome, ("?", ""))
-        name = e.file_name if len(e.file_name) <= 28 else e.file_name[:27] + "…"
+        name = e.file_name if len(e.file_name) <= 20 else e.file_name[:19] + "…"
         n_warn = sum(int(w.get("count", 1)) if isinstance(w, dict) and w.get("code") == "more_warnings" else 1
                      for w in e.warnings)
         return (Text(str(e.drop_id), justify="right"), name, Text(f"{mark} {e.outcome}", style=style),
                 Text(str(rows_total(e)), justify="right"), Text(str(e.n_revisions), justify="right"),
-                Text(str(n_warn), justify="right", style="yellow" if n_warn else ""), fmt.stamp(e.processed_at))
+                Text(str(n_warn), justify="right", style="#d7af00" if n_warn else ""), fmt.stamp(e.processed_at))
 
     def _cursor_key(self) -> str | None:
         t = self.table

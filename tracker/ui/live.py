@@ -247,7 +247,7 @@ class LiveLoop:
         def progress(done: int, total: int, label: str) -> None:
             if self.stop.is_set():
                 raise EstimationCancelled()
-            self.on_activity(f"{what}: {label}", done, total, True)
+            self.on_activity(f"{what}: {'started' if label == 'estimating' else label}", done, total, True)
 
         from tracker.service.estimate import update  # deferred: the first screen is drawn before this import
 

@@ -67,9 +67,7 @@ class ReviewMarked(Message):
 
 @dataclass
 class AssetsLoaded(Message):
-    """Rows of the asset view as plain dicts (column -> value), or an error."""
+    """The asset view (``tracker.service.assets.AssetsView``), or an error in words."""
 
-    columns: tuple[str, ...] = ()
-    rows: tuple[dict, ...] = ()
-    note: str = ""
+    view: object = None
     error: str = ""

@@ -44,19 +44,26 @@ def resample(values: np.ndarray, n_out: int, how: str = "mean") -> np.ndarray:
     return out
 
 
-def _range(*arrays: np.ndarray, include_zero: bool = True) -> tuple[float, float]:
+def _range(*arrays: np.ndarray, include_zero: bool = True) -> tuple[float, float, bool, bool]:
+    """y-limits from the 2nd and 98th percentiles (a filter's first days can have an enormous
+    band that would flatten everything else), widened to zero; and whether values lie
+    beyond each limit (they are then drawn on the edge row and the label says so)."""
     vals = [a[np.isfinite(a)] for a in arrays if a is not None]
     vals = [a for a in vals if a.size]
     if not vals:
-        return -1.0, 1.0
-    lo = float(min(a.min() for a in vals))
-    hi = float(max(a.max() for a in vals))
+        return -1.0, 1.0, False, False
+    allv = np.concatenate(vals)
+    if allv.size > 50:
+        lo, hi = (float(x) for x in np.percentile(allv, [2.0, 98.0]))
+    else:
+        lo, hi = float(allv.min()), float(allv.max())
     if include_zero:
         lo, hi = min(lo, 0.0), max(hi, 0.0)
     if hi - lo < 1e-12:
         lo, hi = lo - 1e-3, hi + 1e-3
     pad = 0.04 * (hi - lo)
-    return lo - pad, hi + pad
+    lo, hi = lo - pad, hi + pad
+    return lo, hi, bool((allv < lo).any()), bool((allv > hi).any())
 
 
 def line_chart(
@@ -89,7 +96,7 @@ def line_chart(
     if band is not None:
         lo_b, hi_b = resample(band[0], w, "min"), resample(band[1], w, "max")
     mk = resample(marks, w) if marks is not None else None
-    vmin, vmax = _range(pts, lo_b, hi_b, mk)
+    vmin, vmax, clip_lo, clip_hi = _range(pts, lo_b, hi_b, mk)
     span = vmax - vmin
     rows = height
     chars = [[" "] * w for _ in range(rows)]
@@ -130,7 +137,7 @@ def line_chart(
             if dots[r, c]:
                 chars[r][c], styles[r][c] = chr(_BRAILLE + dots[r, c]), LINE_STYLE
 
-    labels = {0: label(vmax), rows - 1: label(vmin)}
+    labels = {0: ("≥" if clip_hi else "") + label(vmax), rows - 1: ("≤" if clip_lo else "") + label(vmin)}
     if zero_row is not None and zero_row not in labels and abs(zero_row - 0) > 0 and abs(zero_row - (rows - 1)) > 0:
         labels[zero_row] = label(0.0)
     out = []
