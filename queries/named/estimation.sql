@@ -118,3 +118,53 @@ WHERE superseded_at IS NULL AND subject_id = ? ORDER BY date;
 
 -- name: state_stamps
 SELECT subject_id, model, through_date, updated_at FROM filter_states;
+
+-- Reads of the incremental path: counts instead of whole histories, and only the rows
+-- each update needs (the whole history only for fits, re-derivations and fallbacks).
+
+-- name: row_counts
+-- Per factor: rows, finite rows, first and last date, last finite date (one scan, no join).
+SELECT factor_id, count(*) AS n_rows, count(*) FILTER (WHERE isfinite(ret)) AS n_finite,
+       min(date) AS first_date, max(date) AS last_date,
+       max(date) FILTER (WHERE isfinite(ret)) AS last_finite_date
+FROM factor_returns GROUP BY factor_id;
+
+-- name: rows_after_state
+-- Per factor with a premium filter state: rows after the state's date and rows after the
+-- current premium fit's data (only rows after the earlier of the two are counted).
+WITH bounds AS (
+    SELECT s.subject_id AS factor_id, s.through_date,
+           coalesce(f.data_through, s.through_date) AS fit_through
+    FROM filter_states s
+    LEFT JOIN (SELECT subject_id, max(data_through) AS data_through FROM model_fits
+               WHERE model = 'premium' AND is_current GROUP BY subject_id) f ON f.subject_id = s.subject_id
+    WHERE s.model = 'premium'
+)
+SELECT r.factor_id, count(*) FILTER (WHERE r.date > b.through_date) AS n_after,
+       count(*) FILTER (WHERE r.date > b.fit_through) AS since_fit
+FROM factor_returns r JOIN bounds b USING (factor_id)
+WHERE r.date > least(b.through_date, b.fit_through)
+GROUP BY r.factor_id;
+
+-- name: factor_returns_of
+SELECT factor_id, date, ret FROM factor_returns
+WHERE factor_id IN (SELECT unnest(CAST(? AS VARCHAR[]))) ORDER BY factor_id, date;
+
+-- name: factor_returns_after_states
+-- Rows after each factor's premium filter state.
+SELECT r.factor_id, r.date, r.ret FROM factor_returns r
+JOIN filter_states s ON s.subject_id = r.factor_id AND s.model = 'premium'
+WHERE r.date > s.through_date ORDER BY r.factor_id, r.date;
+
+-- name: factor_returns_of_after
+SELECT factor_id, date, ret FROM factor_returns
+WHERE factor_id IN (SELECT unnest(CAST(? AS VARCHAR[]))) AND date > ? ORDER BY factor_id, date;
+
+-- name: upsert_filter_state_frame
+INSERT OR REPLACE INTO filter_states (subject_id, model, fit_id, through_date, state_json, updated_at)
+SELECT subject_id, model, fit_id, through_date, state_json, updated_at FROM incoming_frame;
+
+-- name: insert_run_frame
+INSERT INTO estimation_runs (run_id, kind, reason, subjects, from_date, through_date, started_at, status, message)
+SELECT nextval('seq_run_id'), kind, reason, subjects, from_date, through_date, started_at, status, message
+FROM incoming_frame;

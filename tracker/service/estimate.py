@@ -28,19 +28,38 @@ import fcntl
 import json
 import math
 import os
+import time
 from collections.abc import Callable
 from contextlib import contextmanager
 from dataclasses import dataclass, field
-from datetime import datetime, timedelta
+from datetime import datetime
 
 import numpy as np
 import pandas as pd
 
 from tracker.config import Config
 from tracker.estimation import warning_rules as wr
+from tracker.service import market as market_mod
+from tracker.service.estimate_io import (
+    FrameBatch,
+    Inputs,
+    premium_columns,
+    read_meta,
+    read_returns,
+)
+from tracker.service.estimate_latest import (
+    HISTORY_KEY,
+    current_summary,
+    emit_mask,
+    has_extras,
+    prior_summary,
+    thresholds,
+    warning_frames,
+)
 from tracker.service.executor import Executor, SerialExecutor, executor_for
 from tracker.service.factor_models import (
     FACTOR_MODELS,
+    HINDSIGHT_ROWS,
     MODEL_PREMIUM,
     MODEL_REGIMES,
     PERIODS_PER_YEAR,
@@ -49,17 +68,13 @@ from tracker.service.factor_models import (
     dumps,
     run_factor,
 )
-from tracker.service.factor_warnings import (
-    LatestContext,
-    latest_warnings,
-    per_date_warnings,
-    significance_of,
-)
-from tracker.service import market as market_mod
+from tracker.service.factor_warnings import run_factor_with_warnings
+from tracker.service.history_summary import sizes_for
 from tracker.store.connection import Store
 from tracker.store.sqlfiles import sql
 
 Progress = Callable[[int, int, str], None]
+_Inputs = Inputs                  # the name the bench and older callers use
 
 
 @dataclass(frozen=True)
@@ -76,6 +91,7 @@ class RunSummary:
     kinds: dict = field(default_factory=dict)   # factor_id -> kind
     rows_written: int = 0
     skipped: str = ""
+    timings: dict = field(default_factory=dict)  # phase -> seconds: read, fits, filters, market, write, exposures
 
     def describe(self) -> str:
         if self.skipped:
@@ -112,70 +128,37 @@ def _settings(config: Config) -> dict:
     return dataclasses.asdict(config.models)
 
 
-@dataclass
-class _Inputs:
-    read_at: datetime
-    factors: pd.DataFrame
-    returns: dict                      # factor_id -> (dates datetime64[D], values)
-    fits: dict                         # (subject, model) -> dict row
-    states: dict                       # (subject, model) -> dict row
-    vintages: dict
-    revisions: dict                    # factor_id -> first revised date
-    recent_revisions: dict
-    latest_codes: dict
-    stamps: dict
+def _thresholds(config: Config) -> wr.WarningThresholds:
+    return thresholds(config)
 
 
-def _read_inputs(store: Store) -> _Inputs:
-    with store.connect() as con:
-        read_at = con.execute("SELECT current_timestamp").fetchone()[0]
-        factors = con.execute(sql("estimation.factors")).df()
-        rets = con.execute(sql("estimation.factor_returns_all")).df()
-        fits = {(r["subject_id"], r["model"]): r for r in con.execute(sql("estimation.current_fits")).df().to_dict("records")}
-        states = {(r["subject_id"], r["model"]): r for r in con.execute(sql("estimation.filter_states")).df().to_dict("records")}
-        vintages = dict(con.execute(sql("estimation.current_vintage")).fetchall())
-        revisions = {r[0]: r[1] for r in con.execute(sql("estimation.pending_revisions")).fetchall()}
-        since = (read_at - timedelta(days=7)) if read_at is not None else datetime(1970, 1, 1)
-        recent = dict(con.execute(sql("estimation.recent_revision_counts"), [since]).fetchall())
-        codes = {r[0]: set(r[1]) for r in con.execute(sql("estimation.latest_warning_codes")).fetchall()}
-        stamps = {(r[0], r[1]): r[3] for r in con.execute(sql("estimation.state_stamps")).fetchall()}
-    returns = {}
-    for fid, g in rets.groupby("factor_id", sort=False):
-        returns[fid] = (g["date"].to_numpy().astype("datetime64[D]"), g["ret"].to_numpy(dtype=float))
-    return _Inputs(read_at, factors, returns, fits, states, vintages, revisions, recent, codes, stamps)
-
-
-def _plan(inp: _Inputs, config: Config, refit_request: set[str] | None, only: set[str] | None) -> list[Plan]:
+def _plan(inp: Inputs, config: Config, refit_request: set[str] | None, only: set[str] | None) -> list[Plan]:
     plans = []
     every = config.models.refit_every_days
     for f in inp.factors.itertuples():
         fid = f.factor_id
         if only is not None and fid not in only:
             continue
-        if fid not in inp.returns:
+        row = inp.rows.get(fid)
+        if row is None:
             continue
-        dates, _ = inp.returns[fid]
         state = inp.states.get((fid, MODEL_PREMIUM))
         vintage = int(inp.vintages.get(fid, 0))
         requested = refit_request is not None and (not refit_request or fid in refit_request)
         if state is None:
-            plans.append(Plan(fid, "backfill", "initial", dates[0], max(vintage, 0) + 1))
+            plans.append(Plan(fid, "backfill", "initial", row.first, max(vintage, 0) + 1))
             continue
         through = np.datetime64(pd.Timestamp(state["through_date"]).date(), "D")
-        n_known = json.loads(state["state_json"]).get(MODEL_PREMIUM, {}).get("n_rows")
-        n_before = int(np.sum(dates <= through))
+        n_known = state["state"].get(MODEL_PREMIUM, {}).get("n_rows")
         if fid in inp.revisions:
             first = np.datetime64(pd.Timestamp(inp.revisions[fid]).date(), "D")
             plans.append(Plan(fid, "rederive", "revision", first, vintage + 1))
-        elif n_known is not None and n_before != n_known:
-            plans.append(Plan(fid, "rederive", "rows inserted before the filter state", dates[0], vintage + 1))
-        elif dates[-1] > through:
-            fit = inp.fits.get((fid, MODEL_PREMIUM))
-            fit_through = through if fit is None or pd.isna(fit["data_through"]) else np.datetime64(pd.Timestamp(fit["data_through"]).date(), "D")
-            since_fit = int(np.sum(dates > fit_through))
+        elif n_known is not None and row.n_before != n_known:
+            plans.append(Plan(fid, "rederive", "rows inserted before the filter state", row.first, vintage + 1))
+        elif row.last > through:
             if requested:
                 plans.append(Plan(fid, "refit", "request", through + 1, vintage))
-            elif since_fit >= every:
+            elif row.since_fit >= every:
                 plans.append(Plan(fid, "refit", "schedule", through + 1, vintage))
             elif "DRIFT" in inp.latest_codes.get(fid, set()):
                 plans.append(Plan(fid, "refit", "drift", through + 1, vintage))
@@ -186,7 +169,35 @@ def _plan(inp: _Inputs, config: Config, refit_request: set[str] | None, only: se
     return plans
 
 
-def _params_of(inp: _Inputs, fid: str) -> dict:
+def _read_inputs(store: Store, config: Config, refit: set[str] | None = None,
+                 only: set[str] | None = None, *, market: bool = True) -> tuple[Inputs, list[Plan]]:
+    """Everything the run needs, on one short connection, and the plans."""
+    sizes = sizes_for(_thresholds(config), HINDSIGHT_ROWS)
+    with store.connect() as con:
+        inp = read_meta(con)
+        inp.freq = dict(zip(inp.factors["factor_id"], inp.factors["frequency"]))
+        plans = _plan(inp, config, refit, only)
+        planned = {p.factor_id: p for p in plans}
+        full = {p.factor_id for p in plans if p.kind != "advance"}
+        history = {p.factor_id for p in plans if p.kind in ("refit", "rederive")}
+        for p in plans:
+            if p.kind == "advance" and (prior_summary(inp, p.factor_id, sizes) is None
+                                        or not has_extras(inp.states.get((p.factor_id, MODEL_PREMIUM)))):
+                full.add(p.factor_id)        # fallback: the whole-history path
+                history.add(p.factor_id)
+        for fid in inp.rows:
+            if fid not in planned and current_summary(inp, fid, sizes) is None:
+                full.add(fid)                # its mean test needs the whole series
+        read_returns(con, inp, full, history)
+        market_needed = bool(plans) or (refit is not None) or not market_mod.has_state(inp.states)
+        if market and market_needed:
+            inp.market = market_mod.read_market_input(
+                con, inp, refit_all=refit is not None and not refit,
+                rederive=any(p.kind == "rederive" for p in plans))
+    return inp, plans
+
+
+def _params_of(inp: Inputs, fid: str) -> dict:
     out = {}
     for model in FACTOR_MODELS:
         rec = inp.fits.get((fid, model))
@@ -195,11 +206,11 @@ def _params_of(inp: _Inputs, fid: str) -> dict:
     return out
 
 
-def _task(inp: _Inputs, plan: Plan, frequency: str, settings: dict) -> FactorTask:
-    dates, values = inp.returns[plan.factor_id]
+def _task(inp: Inputs, plan: Plan, frequency: str, settings: dict) -> FactorTask:
+    dates, values = inp.returns.get(plan.factor_id, (np.empty(0, "datetime64[D]"), np.empty(0)))
     params = _params_of(inp, plan.factor_id)
     if plan.kind == "advance":
-        state = json.loads(inp.states[(plan.factor_id, MODEL_PREMIUM)]["state_json"])
+        state = {k: v for k, v in inp.states[(plan.factor_id, MODEL_PREMIUM)]["state"].items() if k != HISTORY_KEY}
         keep = dates >= plan.emit_from
         return FactorTask(plan.factor_id, frequency, dates[keep], values[keep], settings,
                           refit=False, params=params, states=state, emit_from=plan.emit_from)
@@ -215,6 +226,7 @@ def update(
     only: set[str] | None = None,
     progress: Progress | None = None,
     executor: Executor | None = None,
+    observer: Callable[[FactorOutput], None] | None = None,
 ) -> RunSummary:
     """Bring estimates up to date with the stored data.
 
@@ -227,30 +239,40 @@ def update(
     progress : callable(done, total, label), optional
     executor : Executor, optional
         Where the fits run (default: local processes for refits, this process otherwise).
+    observer : callable(FactorOutput), optional
+        Sees every factor's output before it is written (the benchmark reads its timings).
     """
     with estimation_lock(store) as acquired:
         if not acquired:
             return RunSummary(skipped="another process is estimating; its results will appear when it finishes")
-        summary = _update_locked(store, config, refit, only, progress, executor)
+        summary = _update_locked(store, config, refit, only, progress, executor, observer)
         from tracker.service.assets import update_exposures
 
+        t0 = time.perf_counter()
         n = update_exposures(store, config)
+        summary.timings["exposures"] = time.perf_counter() - t0
         if n:
             summary.kinds["*exposures*"] = "advance"
             summary.rows_written += n
         return summary
 
 
-def _update_locked(store, config, refit, only, progress, executor) -> RunSummary:
+def _update_locked(store, config, refit, only, progress, executor, observer=None) -> RunSummary:
     started = datetime.now()
-    inp = _read_inputs(store)
-    plans = _plan(inp, config, refit, only)
-    market_needed = bool(plans) or (refit is not None) or not market_mod.has_state(inp.states)
-    if not plans and not market_needed:
-        return RunSummary(kinds={})
+    clock = [time.perf_counter()]
+    timings: dict[str, float] = {}
+
+    def lap(name: str) -> None:
+        now = time.perf_counter()
+        timings[name] = now - clock[0]
+        clock[0] = now
+
+    inp, plans = _read_inputs(store, config, refit, only)
+    lap("read")
+    if not plans and inp.market is None:
+        return RunSummary(kinds={}, timings=timings)
     settings = _settings(config)
-    freq = dict(zip(inp.factors["factor_id"], inp.factors["frequency"]))
-    tasks = [_task(inp, p, freq[p.factor_id], settings) for p in plans]
+    tasks = [_task(inp, p, inp.freq[p.factor_id], settings) for p in plans]
     heavy = [t for t in tasks if t.refit]
     light = [t for t in tasks if not t.refit]
     total = len(tasks) + 1
@@ -259,220 +281,138 @@ def _update_locked(store, config, refit, only, progress, executor) -> RunSummary
     if progress:
         progress(0, total, "estimating")
     runner = executor or (executor_for(config) if len(heavy) > 1 else SerialExecutor())
-    for out in runner.map(run_factor, heavy):
+    th = _thresholds(config)
+    for out in runner.map(run_factor_with_warnings, [(t, th) for t in heavy]):
         outputs[out.factor_id] = out
         done += 1
         if progress:
             progress(done, total, f"fitted {out.factor_id}")
+    lap("fits")
     for out in SerialExecutor().map(run_factor, light):
         outputs[out.factor_id] = out
         done += 1
-        if progress:
+        if progress and (done % 50 == 0 or done == len(tasks)):
             progress(done, total, f"filtered {out.factor_id}")
+    lap("filters")
+    if observer is not None:
+        for out in outputs.values():
+            observer(out)
 
     market = market_mod.run_market(inp, config, refit_all=refit is not None and not refit,
                                    rederive=any(p.kind == "rederive" for p in plans))
+    lap("market")
     if not plans and market is None:
-        return RunSummary(kinds={})
+        return RunSummary(kinds={}, timings=timings)
     if progress:
         progress(total, total, "writing results")
     rows = _write(store, config, inp, plans, outputs, market, started)
+    lap("write")
     kinds = {p.factor_id: p.kind for p in plans}
     if market is not None and market.emitted:
         kinds[market_mod.MARKET] = market.kind
-    return RunSummary(kinds=kinds, rows_written=rows)
+    return RunSummary(kinds=kinds, rows_written=rows, timings=timings)
 
 
-def _emit_mask(out: FactorOutput, plan: Plan) -> np.ndarray:
-    if plan.emit_from is None:
-        return np.zeros(out.dates.size, dtype=bool)
-    return (out.dates >= plan.emit_from) & np.isfinite(out.returns)
-
-
-def _premium_frame(out: FactorOutput, plan: Plan, frequency: str, fit_id: int | None) -> pd.DataFrame:
-    m = _emit_mask(out, plan)
-    ppy = PERIODS_PER_YEAR[frequency]
-    sd = np.sqrt(out.premium_var[m])
-    prem = out.premium[m]
-    return pd.DataFrame({
-        "factor_id": out.factor_id,
-        "date": out.dates[m].astype("datetime64[ns]"),
-        "vintage": plan.vintage,
-        "fit_id": fit_id,
-        "premium": prem,
-        "premium_sd": sd,
-        "premium_ann": prem * ppy,
-        "premium_ann_sd": sd * ppy,
-        "regime_premium": out.regime_premium[m],
-        "regime_premium_sd": np.sqrt(out.regime_premium_var[m]),
-        "vol_forecast": out.vol_forecast[m],
-        "sharpe_ann": prem / out.vol_forecast[m] * math.sqrt(ppy),
-        "snr": out.snr[m],
-        "std_error": out.std_error[m],
-        "loglik_t": out.loglik_t[m],
-    })
-
-
-def regime_frame(subject: str, dates, filtered, predicted, vintage: int, fit_id) -> pd.DataFrame:
+def _regime_columns(dates, filtered, predicted) -> dict:
     ok = np.all(np.isfinite(filtered), axis=1)
     f, p = filtered[ok], predicted[ok]
-    return pd.DataFrame({
-        "subject_id": subject,
+    return {
         "date": np.asarray(dates)[ok].astype("datetime64[ns]"),
-        "vintage": vintage,
-        "fit_id": fit_id,
-        "n_regimes": f.shape[1],
+        "n_regimes": np.full(f.shape[0], f.shape[1], dtype=np.int64),
         "regime": np.argmax(f, axis=1).astype(int),
         "probability": np.max(f, axis=1),
         "filtered": [list(map(float, r)) for r in f],
         "predicted": [list(map(float, r)) for r in p],
-    })
+    }
 
 
-def _full_history(store: Store, out: FactorOutput, plan: Plan):
-    """Arrays over the whole history for the latest-date rules."""
-    if plan.kind != "advance":
-        return (out.dates, out.returns, out.premium, out.premium_var, out.std_error,
-                out.loglik_t, out.regime_filtered)
-    with store.connect() as con:
-        hist = con.execute(sql("estimation.current_premium_history"), [out.factor_id]).df()
-        reg = con.execute(sql("estimation.current_regime_history"), [out.factor_id]).df()
-        rets = con.execute(sql("estimation.factor_returns_for"), [out.factor_id]).df()
-    rets = rets[rets["date"] < pd.Timestamp(plan.emit_from)]
-    old_dates = rets["date"].to_numpy().astype("datetime64[D]")
-    hist = hist.set_index(hist["date"].to_numpy().astype("datetime64[D]")).reindex(old_dates)
-    k = out.regime_filtered.shape[1] if out.regime_filtered is not None else 0
-    if k:
-        reg_map = {np.datetime64(pd.Timestamp(d).date(), "D"): v for d, v in zip(reg["date"], reg["filtered"])}
-        old_reg = np.array([reg_map.get(d, [np.nan] * k) for d in old_dates], dtype=float).reshape(-1, k)
-        full_reg = np.vstack([old_reg, out.regime_filtered])
-    else:
-        full_reg = None
-    return (
-        np.concatenate([old_dates, out.dates]),
-        np.concatenate([rets["ret"].to_numpy(float), out.returns]),
-        np.concatenate([hist["premium"].to_numpy(float), out.premium]),
-        np.concatenate([hist["premium_sd"].to_numpy(float) ** 2, out.premium_var]),
-        np.concatenate([hist["std_error"].to_numpy(float), out.std_error]),
-        np.concatenate([hist["loglik_t"].to_numpy(float), out.loglik_t]),
-        full_reg,
-    )
+def regime_frame(subject: str, dates, filtered, predicted, vintage: int, fit_id) -> pd.DataFrame:
+    cols = _regime_columns(dates, filtered, predicted)
+    return pd.DataFrame({"subject_id": subject, "date": cols.pop("date"), "vintage": vintage,
+                         "fit_id": fit_id, **cols})
 
 
-def _warning_frames(store, config, inp, plans, outputs) -> list[pd.DataFrame]:
-    th = config.warnings or wr.WarningThresholds()
-    meta = inp.factors.set_index("factor_id")
-    frames = []
-    # significance across the tracked set, from every factor's whole history
-    tests = {fid: significance_of(vals) for fid, (_, vals) in inp.returns.items()}
-    ids = list(tests)
-    p = np.array([tests[f].p_value for f in ids], dtype=float)
-    p_adj = dict(zip(ids, wr.tracked_set_adjusted_p(p, th)))
-    latest_by_freq: dict[str, np.datetime64] = {}
-    for fid, (dates, _) in inp.returns.items():
-        fr = meta.loc[fid, "frequency"]
-        latest_by_freq[fr] = max(latest_by_freq.get(fr, dates[-1]), dates[-1])
-    for plan in plans:
-        out = outputs.get(plan.factor_id)
-        if out is None:
-            continue
-        fr = meta.loc[plan.factor_id, "frequency"]
-        m = _emit_mask(out, plan)
-        if m.any():
-            first = int(np.argmax(m))
-            n_prior = 0 if plan.kind != "advance" else int(np.sum(inp.returns[plan.factor_id][0] < plan.emit_from))
-            rows = per_date_warnings(out, fr, first, n_prior, th)
-            full = _full_history(store, out, plan)
-            status = {**{k: v for k, v in _fit_statuses(inp, plan.factor_id).items()}, **out.status}
-            msg = {**_fit_messages(inp, plan.factor_id), **out.message}
-            test = tests[plan.factor_id]
-            ctx = LatestContext(
-                frequency=fr, is_new=bool(meta.loc[plan.factor_id, "is_new"]),
-                t_stat=test.t_stat, p_value=test.p_value, p_adjusted=float(p_adj[plan.factor_id]),
-                latest_date_in_set=latest_by_freq[fr],
-                revision_count=int(inp.recent_revisions.get(plan.factor_id, 0)),
-                fit_status=status.get(MODEL_PREMIUM, "failed"), fit_message=msg.get(MODEL_PREMIUM, ""),
-                regime_status=status.get(MODEL_REGIMES, "failed"), regime_message=msg.get(MODEL_REGIMES, ""),
-            )
-            last_rows = latest_warnings(out, ctx, th, *full)
-            last_date = full[0][-1]
-            rows = [r for r in rows if r["date"] != last_date] + last_rows
-            if rows:
-                df = pd.DataFrame(rows)
-                df["date"] = pd.to_datetime(df["date"])
-                df["vintage"] = plan.vintage
-                frames.append(df)
-    return frames
-
-
-def _fit_statuses(inp: _Inputs, fid: str) -> dict:
-    return {m: r["status"] for (s, m), r in inp.fits.items() if s == fid}
-
-
-def _fit_messages(inp: _Inputs, fid: str) -> dict:
-    return {m: r["message"] for (s, m), r in inp.fits.items() if s == fid}
+def _state_json(inp: Inputs, plan: Plan, out: FactorOutput, prep) -> str:
+    states = {**out.states, **(prep.extra_states if prep else {})}
+    states.pop(HISTORY_KEY, None)
+    summary = prep.store if prep is not None else None
+    if summary is None and plan.emit_from is None:
+        old = inp.states.get((plan.factor_id, MODEL_PREMIUM))
+        if old and old["state"].get(HISTORY_KEY):
+            states[HISTORY_KEY] = old["state"][HISTORY_KEY]    # nothing stored: unchanged
+    if summary is not None:
+        states[HISTORY_KEY] = summary.to_dict()
+    return dumps(states)
 
 
 def _write(store, config, inp, plans, outputs, market, started) -> int:
-    meta = inp.factors.set_index("factor_id")
-    warn_frames = _warning_frames(store, config, inp, plans, outputs)
-    written = 0
+    warn_frame, prepared = warning_frames(config, inp, plans, outputs)
+    state_rows, run_rows = [], []
     with store.transaction() as con:
         stamps = {(r[0], r[1]): r[3] for r in con.execute(sql("estimation.state_stamps")).fetchall()}
         if stamps != inp.stamps:
             raise ConcurrentUpdate("another process updated the estimates meanwhile")
+        premium = FrameBatch(con, "estimation.insert_premium_frame")
+        regimes = FrameBatch(con, "estimation.insert_regime_frame")
         for plan in plans:
-            out = outputs[plan.factor_id]
-            fr = meta.loc[plan.factor_id, "frequency"]
-            dates, _ = inp.returns[plan.factor_id]
+            fid = plan.factor_id
+            out = outputs[fid]
+            row = inp.rows[fid]
             fit_ids = {}
             for rec in out.fits:
                 fit_id = con.execute(sql("estimation.next_fit_id")).fetchone()[0]
-                con.execute(sql("estimation.retire_fits"), [plan.factor_id, rec.model])
+                con.execute(sql("estimation.retire_fits"), [fid, rec.model])
                 con.execute(sql("estimation.insert_fit"), [
-                    fit_id, plan.factor_id, rec.model, rec.status, rec.message, dumps(rec.params),
+                    fit_id, fid, rec.model, rec.status, rec.message, dumps(rec.params),
                     rec.loglik if math.isfinite(rec.loglik) else None, rec.n_obs, rec.converged,
-                    _d(dates[0]), _d(dates[-1]), plan.reason,
+                    _d(row.first), _d(row.last), plan.reason,
                 ])
                 fit_ids[rec.model] = fit_id
-            premium_fit = fit_ids.get(MODEL_PREMIUM) or _current_fit_id(inp, plan.factor_id, MODEL_PREMIUM)
-            regime_fit = fit_ids.get(MODEL_REGIMES) or _current_fit_id(inp, plan.factor_id, MODEL_REGIMES)
+            premium_fit = fit_ids.get(MODEL_PREMIUM) or _current_fit_id(inp, fid, MODEL_PREMIUM)
+            regime_fit = fit_ids.get(MODEL_REGIMES) or _current_fit_id(inp, fid, MODEL_REGIMES)
             if plan.kind == "rederive":
+                premium.flush()
+                regimes.flush()
                 for q in ("supersede_premium", "supersede_regime", "supersede_warnings"):
-                    con.execute(sql(f"estimation.{q}"), [plan.factor_id, _d(plan.emit_from)])
-            pf = _premium_frame(out, plan, fr, premium_fit)
-            if len(pf):
-                con.register("incoming_frame", pf)
-                con.execute(sql("estimation.insert_premium_frame"))
-                con.unregister("incoming_frame")
-                written += len(pf)
+                    con.execute(sql(f"estimation.{q}"), [fid, _d(plan.emit_from)])
+            m = emit_mask(out, plan)
+            premium.add({"factor_id": fid, "vintage": plan.vintage, "fit_id": premium_fit},
+                        premium_columns(out, m, PERIODS_PER_YEAR[inp.freq[fid]]))
             if out.regime_filtered is not None:
-                m = _emit_mask(out, plan)
-                rf = regime_frame(plan.factor_id, out.dates[m], out.regime_filtered[m],
-                                  out.regime_predicted[m], plan.vintage, regime_fit)
-                if len(rf):
-                    con.register("incoming_frame", rf)
-                    con.execute(sql("estimation.insert_regime_frame"))
-                    con.unregister("incoming_frame")
-            con.execute(sql("estimation.upsert_filter_state"), [
-                plan.factor_id, MODEL_PREMIUM, premium_fit or 0, _d(dates[-1]), dumps(out.states), inp.read_at,
-            ])
-            con.execute(sql("estimation.insert_run"), [
-                con.execute(sql("estimation.next_run_id")).fetchone()[0], plan.kind, plan.reason,
-                plan.factor_id, _d(plan.emit_from) if plan.emit_from is not None else None,
-                _d(dates[-1]), started, "ok", "",
-            ])
-        for df in warn_frames:
-            con.register("incoming_frame", df)
+                regimes.add({"subject_id": fid, "vintage": plan.vintage, "fit_id": regime_fit},
+                            _regime_columns(out.dates[m], out.regime_filtered[m], out.regime_predicted[m]))
+            state_rows.append((fid, MODEL_PREMIUM, premium_fit or 0, _d(row.last),
+                               _state_json(inp, plan, out, prepared.get(fid)), inp.read_at))
+            run_rows.append((plan.kind, plan.reason, fid, _d(plan.emit_from) if plan.emit_from is not None else None,
+                             _d(row.last), started, "ok", ""))
+        premium.flush()
+        regimes.flush()
+        _insert_rows(con, "estimation.upsert_filter_state_frame", state_rows,
+                     ("subject_id", "model", "fit_id", "through_date", "state_json", "updated_at"))
+        _insert_rows(con, "estimation.insert_run_frame", run_rows,
+                     ("kind", "reason", "subjects", "from_date", "through_date", "started_at", "status", "message"))
+        if warn_frame is not None:
+            con.register("incoming_frame", warn_frame)
             con.execute(sql("estimation.insert_warning_frame"))
             con.unregister("incoming_frame")
         if market is not None:
             market_mod.write_market(con, market, inp, started)
         con.execute(sql("estimation.bump_version"))
-    return written
+    return premium.written
 
 
-def _current_fit_id(inp: _Inputs, fid: str, model: str):
+def _insert_rows(con, query: str, rows: list[tuple], columns: tuple[str, ...]) -> None:
+    if not rows:
+        return
+    frame = pd.DataFrame(rows, columns=list(columns))
+    con.register("incoming_frame", frame)
+    try:
+        con.execute(sql(query))
+    finally:
+        con.unregister("incoming_frame")
+
+
+def _current_fit_id(inp: Inputs, fid: str, model: str):
     rec = inp.fits.get((fid, model))
     return None if rec is None else int(rec["fit_id"])
 

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import json
 import math
+import time
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -52,6 +53,15 @@ MODEL_PREMIUM = "premium"
 MODEL_REGIMES = "regimes"
 MODEL_REGIME_PREMIUM = "regime_premium"
 FACTOR_MODELS = (MODEL_VOL, MODEL_PREMIUM, MODEL_REGIMES, MODEL_REGIME_PREMIUM)
+
+# Extra filter states kept beside the models' own, so the latest-date warnings of an
+# advance cost O(new rows): the premium refiltered with q halved and doubled (FRAGILE)
+# and the last HINDSIGHT_ROWS rows with the filter state before them (HINDSIGHT_GAP: the
+# smoother over the whole history, restricted to its last rows, only needs those).
+STATE_Q_HALF = "premium_q_half"
+STATE_Q_DOUBLE = "premium_q_double"
+STATE_TAIL = "premium_tail"
+HINDSIGHT_ROWS = 21
 
 
 @dataclass(frozen=True)
@@ -111,6 +121,12 @@ class FactorOutput:
     regime_predicted: np.ndarray | None           # (T, K)
     status: dict                                  # model -> status of the fit in force
     message: dict
+    # latest-date inputs from the extra states: q_half, q_double (last filtered premium
+    # with q scaled) and hindsight (smoothed premium of the last HINDSIGHT_ROWS rows);
+    # empty when the saved state lacks them (a store estimated before they existed)
+    extras: dict = field(default_factory=dict)
+    timings: dict = field(default_factory=dict)   # model -> seconds spent in this task
+    dated_warnings: list | None = None            # per-date warning rows, when the worker made them
 
 
 def _nan(n: int) -> np.ndarray:
@@ -190,6 +206,14 @@ def run_factor(task: FactorTask) -> FactorOutput:
     states = dict(task.states) if not task.refit else {}
     status = {}
     message = {}
+    timings: dict[str, float] = {}
+    clock = time.perf_counter()
+
+    def lap(model: str) -> None:
+        nonlocal clock
+        now = time.perf_counter()
+        timings[model] = now - clock
+        clock = now
 
     # 1. volatility
     if task.refit or MODEL_VOL not in params:
@@ -200,6 +224,7 @@ def run_factor(task: FactorTask) -> FactorOutput:
     h_next = vf.state.h_next if vf is not None else float("nan")
     if vf is not None:
         states[MODEL_VOL] = vf.state.to_dict()
+    lap(MODEL_VOL)
 
     # 2. premium (local level)
     prev_ll = LocalLevelParams.from_dict(params[MODEL_PREMIUM]) if params.get(MODEL_PREMIUM) else None
@@ -217,6 +242,7 @@ def run_factor(task: FactorTask) -> FactorOutput:
         params[MODEL_PREMIUM] = fitted
         status[MODEL_PREMIUM], message[MODEL_PREMIUM] = fit.status, msg
     ll_params = LocalLevelParams.from_dict(params[MODEL_PREMIUM]) if params.get(MODEL_PREMIUM) else None
+    fresh = not states.get(MODEL_PREMIUM)          # filtering from the first row, not resuming
     if ll_params is not None:
         st = FilterState.from_dict(states[MODEL_PREMIUM]) if states.get(MODEL_PREMIUM) else None
         flt = filter_local_level(ll_params, y, h, state=st, h_next=h_next)
@@ -227,6 +253,9 @@ def run_factor(task: FactorTask) -> FactorOutput:
         premium = premium_var = forecast_var = std_error = loglik_t = snr = _nan(n)
     h_ahead = np.append(h[1:], h_next)
     vol_forecast = np.sqrt(h_ahead * (ll_params.c if ll_params is not None else 1.0))
+    lap(MODEL_PREMIUM)
+    extras = _latest_extras(ll_params if vf is not None else None, y, h, states, fresh=fresh)
+    lap("extras")
 
     # 3. regimes (Markov-switching mean and variance)
     prev_rp = RegimeParams.from_dict(params[MODEL_REGIMES]) if params.get(MODEL_REGIMES) else None
@@ -241,7 +270,10 @@ def run_factor(task: FactorTask) -> FactorOutput:
                               _finite_or_nan(rfit.loglik), int(finite.sum()), bool(rfit.converged)))
         params[MODEL_REGIMES] = rfit.params.to_dict() if rfit.status == "ok" else {}
         status[MODEL_REGIMES], message[MODEL_REGIMES] = rfit.status, rfit.message
-    rp = RegimeParams.from_dict(params[MODEL_REGIMES]) if params.get(MODEL_REGIMES) else None
+    if task.refit or prev_rp is None:   # parsed once per task: an advance is ~1 ms, parsing counts
+        rp = RegimeParams.from_dict(params[MODEL_REGIMES]) if params.get(MODEL_REGIMES) else None
+    else:
+        rp = prev_rp
     regime_filtered = regime_predicted = None
     if rp is not None:
         finite = np.isfinite(y)
@@ -252,6 +284,7 @@ def run_factor(task: FactorTask) -> FactorOutput:
         regime_predicted = np.full((n, rp.k_regimes), np.nan)
         regime_filtered[finite] = rf.filtered
         regime_predicted[finite] = rf.predicted
+    lap(MODEL_REGIMES)
 
     # 4. regime-aware premium (Kim filter), driven by the regime transition matrix
     prev_kp = KimParams.from_dict(params[MODEL_REGIME_PREMIUM]) if params.get(MODEL_REGIME_PREMIUM) else None
@@ -266,7 +299,10 @@ def run_factor(task: FactorTask) -> FactorOutput:
         status[MODEL_REGIME_PREMIUM], message[MODEL_REGIME_PREMIUM] = kfit.status, kfit.message
     elif rp is None and task.refit:
         params[MODEL_REGIME_PREMIUM] = {}
-    kp = KimParams.from_dict(params[MODEL_REGIME_PREMIUM]) if params.get(MODEL_REGIME_PREMIUM) else None
+    if rp is not None and not (task.refit or prev_kp is None):
+        kp = prev_kp
+    else:
+        kp = KimParams.from_dict(params[MODEL_REGIME_PREMIUM]) if params.get(MODEL_REGIME_PREMIUM) else None
     if kp is not None:
         st = KimState.from_dict(states[MODEL_REGIME_PREMIUM]) if states.get(MODEL_REGIME_PREMIUM) else None
         kf = filter_kim(kp, y, h, state=st, h_next=h_next)
@@ -274,6 +310,7 @@ def run_factor(task: FactorTask) -> FactorOutput:
         regime_premium, regime_premium_var = kf.mean, kf.var
     else:
         regime_premium = regime_premium_var = _nan(n)
+    lap(MODEL_REGIME_PREMIUM)
 
     return FactorOutput(
         factor_id=task.factor_id, fits=tuple(fits), params=params, states=states,
@@ -282,7 +319,64 @@ def run_factor(task: FactorTask) -> FactorOutput:
         loglik_t=loglik_t, snr=snr, regime_premium=regime_premium,
         regime_premium_var=regime_premium_var, regime_filtered=regime_filtered,
         regime_predicted=regime_predicted, status=status, message=message,
+        extras=extras, timings=timings,
     )
+
+
+def _latest_extras(ll_params: LocalLevelParams | None, y: np.ndarray, h: np.ndarray, states: dict,
+                   *, fresh: bool) -> dict:
+    """Advance the fragility and hindsight states by this block; return their latest values.
+
+    With ``fresh`` (the block is the whole history) the states start from the
+    exact diffuse start, as :func:`refiltered_premium` and :func:`hindsight_premium` do;
+    otherwise they continue from the saved ones, and are dropped when the saved state
+    has none (the service then recomputes them from the whole history).
+    """
+    keys = (STATE_Q_HALF, STATE_Q_DOUBLE, STATE_TAIL)
+    if ll_params is None or y.size == 0 or (not fresh and not all(states.get(k) for k in keys)):
+        for k in keys:
+            states.pop(k, None)
+        return {}
+    out = {}
+    for key, scale in ((STATE_Q_HALF, 0.5), (STATE_Q_DOUBLE, 2.0)):
+        p = LocalLevelParams(q=ll_params.q * scale, c=ll_params.c)
+        st = None if fresh else FilterState.from_dict(states[key])
+        flt = filter_local_level(p, y, h, state=st)
+        states[key] = flt.end_state.to_dict()
+        out["q_half" if scale < 1 else "q_double"] = float(flt.mean[-1])
+    tail = None if fresh else states[STATE_TAIL]
+    prior = FilterState() if tail is None else FilterState.from_dict(tail["prior"])
+    ty = np.concatenate([_floats(tail["y"]) if tail else np.empty(0), y])
+    th = np.concatenate([_floats(tail["h"]) if tail else np.empty(0), h])
+    drop = max(0, ty.size - HINDSIGHT_ROWS)
+    if drop:
+        # the rows leaving the tail only move the filter state before it
+        prior = filter_local_level(ll_params, ty[:drop], th[:drop], state=prior).end_state
+        ty, th = ty[drop:], th[drop:]
+    states[STATE_TAIL] = {"prior": prior.to_dict(), "y": _nullable(ty), "h": _nullable(th)}
+    out["hindsight"] = smooth_hindsight(ll_params, ty, th, prior=prior).mean
+    return out
+
+
+def _floats(values: list) -> np.ndarray:
+    return np.array([np.nan if v is None else v for v in values], dtype=float)
+
+
+def _nullable(a: np.ndarray) -> list:
+    return [float(v) if math.isfinite(v) else None for v in a]
+
+
+def latest_extras_full(params: dict, returns: np.ndarray) -> tuple[dict, dict]:
+    """The extras and their states from the whole history (a store that lacks them)."""
+    if not params.get(MODEL_PREMIUM) or params.get(MODEL_VOL) is None:
+        return {}, {}
+    vf = _vol_filter(params[MODEL_VOL], returns, None)
+    if vf is None:
+        return {}, {}
+    states: dict = {}
+    extras = _latest_extras(LocalLevelParams.from_dict(params[MODEL_PREMIUM]), np.asarray(returns, float),
+                            usable_variance(vf), states, fresh=True)
+    return extras, states
 
 
 def hindsight_premium(params: dict, returns: np.ndarray) -> np.ndarray | None:

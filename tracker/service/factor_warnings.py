@@ -15,23 +15,25 @@ Rows are plain dicts ready for the ``warnings`` table.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass
 
 import numpy as np
 
+from scipy import stats
+
 from tracker.estimation import significance as sig
 from tracker.estimation import warning_rules as wr
 from tracker.service.factor_models import (
+    HINDSIGHT_ROWS,
     MODEL_PREMIUM,
     MODEL_REGIMES,
     PERIODS_PER_YEAR,
     FactorOutput,
     hindsight_premium,
 )
-
-
-HINDSIGHT_ROWS = 21
+from tracker.service.history_summary import HistorySummary
 
 
 def _row(subject: str, date, w: wr.Warning) -> dict:
@@ -42,6 +44,24 @@ def _row(subject: str, date, w: wr.Warning) -> dict:
         "threshold": float(w.threshold) if w.threshold is not None and math.isfinite(w.threshold) else None,
         "source": w.source,
     }
+
+
+def run_factor_with_warnings(args: tuple) -> FactorOutput:
+    """Top-level (picklable) worker task: :func:`run_factor` and the per-date warnings of
+    the rows it emits, so a refit's per-date rules run in the workers beside the fits.
+
+    ``args`` is ``(task, thresholds)``; only for tasks that start at the first row (fits,
+    backfills), where no stored row comes before the block.
+    """
+    from tracker.service.factor_models import run_factor
+
+    task, th = args
+    out = run_factor(task)
+    if task.emit_from is None:
+        return out
+    m = (out.dates >= task.emit_from) & np.isfinite(out.returns)
+    rows = per_date_warnings(out, task.frequency, int(np.argmax(m)), 0, th) if m.any() else []
+    return dataclasses.replace(out, dated_warnings=rows)
 
 
 def per_date_warnings(out: FactorOutput, frequency: str, first_index: int, n_prior: int,
@@ -156,6 +176,113 @@ def latest_warnings(out: FactorOutput, ctx: LatestContext, th: wr.WarningThresho
     return [_row(out.factor_id, full_dates[last], w) for w in wr.evaluate_all(inputs, th)]
 
 
+def latest_warnings_from_summary(out: FactorOutput, ctx: LatestContext, th: wr.WarningThresholds,
+                                 summary: HistorySummary,
+                                 diag: sig.ResidualDiagnostics | None) -> list[dict]:
+    """:func:`latest_warnings` of an advance, from the history summary (see
+    :mod:`tracker.service.history_summary`) already extended with this run's rows.
+
+    The rules that read the whole history get the same statistics from the summary:
+    DRIFT its drift statistic, GAP / REPEATED / FREQ_MISMATCH its running statistics,
+    MISFIT ``diag`` (:func:`batch_misfit_diagnostics` of the summary's errors), OUTLIER and
+    STALE its tails; FRAGILE and HINDSIGHT_GAP take ``out.extras``. The other rules run on
+    bounded tails that hold every row they look at. Same rows as the whole-history path
+    (to rounding: a held twin test compares them).
+    """
+    ppy = PERIODS_PER_YEAR[ctx.frequency]
+    prem = np.asarray(summary.premium, dtype=float)
+    sd = np.sqrt(np.asarray(summary.premium_var, dtype=float))
+    vol = out.vol_forecast[-1] if out.vol_forecast.size else float("nan")
+    n_drop = th.fragile_drop_last
+    last = summary.n_rows - 1
+    drop_last = prem[prem.size - 1 - n_drop] if last - n_drop >= 0 else None
+    probs = None
+    if out.regime_filtered is not None:
+        k = out.regime_filtered.shape[1]
+        rows = [r for r in summary.regimes if len(r) == k]
+        probs = np.array(rows, dtype=float).reshape(len(rows), k)
+    smoothed = out.extras.get("hindsight")
+    inputs = wr.FactorWarningInputs(
+        premium=float(prem[-1]), premium_sd=float(sd[-1]), volatility=float(vol), periods_per_year=ppy,
+        t_stat=ctx.t_stat, p_value=ctx.p_value, p_value_adjusted=ctx.p_adjusted, is_new_factor=ctx.is_new,
+        premium_drop_last=None if drop_last is None else float(drop_last),
+        premium_q_half=out.extras.get("q_half"), premium_q_double=out.extras.get("q_double"),
+        filtered_path=prem[-HINDSIGHT_ROWS:],
+        smoothed_path=None if smoothed is None else np.asarray(smoothed)[-HINDSIGHT_ROWS:],
+        filtered_sd_path=sd[-HINDSIGHT_ROWS:],
+        sharpe_annual=float(prem[-1] / vol * math.sqrt(ppy)) if vol and vol > 0 else None,
+        history_years=float(summary.returns.n / ppy),
+        regime_probabilities=probs, regime_status=ctx.regime_status, regime_message=ctx.regime_message,
+        standardized_errors=None, predictive_loglik=None,
+        fit_status=ctx.fit_status, fit_message=ctx.fit_message, frequency=ctx.frequency,
+        dates=None, values=None, latest_date_in_set=ctx.latest_date_in_set, revision_count=ctx.revision_count,
+    )
+    found = wr.evaluate_all(inputs, th)
+    errors = np.asarray(summary.errors, dtype=float)
+    last_finite = None if summary.last_date is None else np.datetime64(summary.last_date, "D")
+    extra = [
+        wr.rule_misfit_normal(diag, th), wr.rule_misfit_serial(diag, th),
+        wr.rule_drift(summary.drift(th.drift_window), th),
+        wr.rule_stale(last_finite, ctx.latest_date_in_set, ctx.frequency, th, None),
+        wr.rule_outlier(errors, th) if errors.size else None,
+        *summary.data_quality_warnings(th),
+    ]
+    order = {code: i for i, code in enumerate(wr.CATALOGUE)}
+    found = sorted(found + [w for w in extra if w is not None], key=lambda w: order.get(w.code, len(order)))
+    return [_row(out.factor_id, out.dates[-1], w) for w in found]
+
+
+def batch_misfit_diagnostics(tails: dict[str, np.ndarray],
+                             th: wr.WarningThresholds) -> dict[str, sig.ResidualDiagnostics]:
+    """:func:`wr.misfit_diagnostics` of many factors at once.
+
+    ``tails`` maps factor id -> its finite standardized errors (the last ``misfit_window``
+    or more). Jarque-Bera and Ljung-Box are vectorised over the factors that share a
+    length and a lag count (after a day's update: all of them), with the moments
+    statsmodels' ``jarque_bera`` (scipy's biased skewness and kurtosis) and
+    ``acorr_ljungbox`` (unadjusted autocorrelations, Q = n (n+2) sum r_k^2 / (n-k)) use;
+    the rest go through the library one by one.
+    """
+    out: dict[str, sig.ResidualDiagnostics] = {}
+    groups: dict[tuple[int, int], list[tuple[str, np.ndarray]]] = {}
+    for fid, e in tails.items():
+        e = np.asarray(e, dtype=float)
+        e = e[np.isfinite(e)]
+        if th.misfit_window > 0:
+            e = e[-th.misfit_window:]
+        lags = min(th.ljung_box_lags, e.size // 5)
+        if e.size < sig.MIN_DIAGNOSTIC_OBS or lags < 1 or lags >= e.size - 1:
+            out[fid] = sig.residual_diagnostics(e, lags=lags)
+        else:
+            groups.setdefault((e.size, lags), []).append((fid, e))
+    for (n, lags), members in groups.items():
+        if len(members) == 1:
+            fid, e = members[0]
+            out[fid] = sig.residual_diagnostics(e, lags=lags)
+            continue
+        x = np.vstack([e for _, e in members])                      # (M, n)
+        d = x - x.mean(axis=1, keepdims=True)
+        m2 = np.mean(d**2, axis=1)
+        m3 = np.mean(d**3, axis=1)
+        m4 = np.mean(d**4, axis=1)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            skew = m3 / m2**1.5
+            kurt = 3.0 + (m4 / m2**2.0 - 3.0)
+        jb = (n / 6.0) * (skew**2 + 0.25 * (kurt - 3.0) ** 2)
+        jb_p = stats.chi2.sf(jb, 2)
+        acov0 = np.einsum("mt,mt->m", d, d)
+        q = np.zeros(len(members))
+        for k in range(1, lags + 1):
+            r = np.einsum("mt,mt->m", d[:, k:], d[:, :-k]) / acov0
+            q += r * r / (n - k)
+        q *= n * (n + 2)
+        q_p = stats.chi2.sf(q, lags)
+        for i, (fid, _) in enumerate(members):
+            out[fid] = sig.ResidualDiagnostics("ok", "", n, lags, float(jb[i]), float(jb_p[i]), float(skew[i]),
+                                               float(kurt[i]), float(q[i]), float(q_p[i]))
+    return out
+
+
 def fit_status_of(fits: dict, model: str) -> tuple[str, str]:
     rec = fits.get(model)
     if rec is None:
@@ -164,6 +291,7 @@ def fit_status_of(fits: dict, model: str) -> tuple[str, str]:
 
 
 __all__ = [
-    "LatestContext", "latest_warnings", "per_date_warnings", "significance_of", "fit_status_of",
+    "HINDSIGHT_ROWS", "LatestContext", "batch_misfit_diagnostics", "latest_warnings",
+    "latest_warnings_from_summary", "per_date_warnings", "significance_of", "fit_status_of",
     "MODEL_PREMIUM", "MODEL_REGIMES",
 ]

@@ -50,39 +50,83 @@ def has_state(states: dict) -> bool:
     return (MARKET, MODEL_MARKET) in states
 
 
+@dataclass(frozen=True)
+class MarketInput:
+    """What the market run needs from the store: its columns and the complete rows to use
+    (all of them for a fit, those after the saved state for an advance)."""
+
+    columns: tuple[str, ...]
+    refit: bool
+    matrix: pd.DataFrame              # (T, N) complete rows, columns in ``columns`` order
+
+
 def market_columns(inp) -> list[str]:
     daily = inp.factors[inp.factors["frequency"] == "daily"]["factor_id"]
-    lengths = {f: inp.returns[f][0].size for f in daily if f in inp.returns}
+    lengths = {f: inp.rows[f].n_rows for f in daily if f in inp.rows}
     if not lengths:
         return []
     longest = max(lengths.values())
     return sorted(f for f, n in lengths.items() if n >= COVERAGE * longest)
 
 
-def market_matrix(inp, columns: list[str]) -> pd.DataFrame:
-    frames = {f: pd.Series(inp.returns[f][1], index=inp.returns[f][0]) for f in columns}
-    return pd.DataFrame(frames).dropna()
+def _previous(inp):
+    """The current market fit's parameters (parsed once per run: at 500 factors with full
+    covariances they are 10 MB of JSON)."""
+    return _previous_with_dict(inp)[0]
 
 
-def run_market(inp, config, *, refit_all: bool, rederive: bool) -> MarketOutput | None:
+def _previous_with_dict(inp):
+    cache = getattr(inp, "_market_previous", None)
+    if cache is None:
+        fit_row = inp.fits.get((MARKET, MODEL_MARKET))
+        params, raw = None, None
+        if fit_row is not None and fit_row["status"] == "ok":
+            raw = _params_only(fit_row["params_json"])
+            params = MarketRegimeParams.from_dict(raw)
+        cache = inp._market_previous = (params, raw)
+    return cache
+
+
+def _wants_fit(inp, columns, *, refit_all: bool, rederive: bool) -> bool:
+    prev = _previous(inp)
+    same_columns = prev is not None and tuple(prev.columns or ()) == tuple(columns)
+    return (MARKET, MODEL_MARKET) not in inp.states or not same_columns or refit_all or rederive
+
+
+def read_market_input(con, inp, *, refit_all: bool, rederive: bool) -> MarketInput | None:
+    """Read the market's rows on the caller's connection: whole columns only for a fit."""
     columns = market_columns(inp)
     if len(columns) < 2:
         return None
-    x = market_matrix(inp, columns)
+    refit = _wants_fit(inp, columns, refit_all=refit_all, rederive=rederive)
+    if refit:
+        df = con.execute(sql("estimation.factor_returns_of"), [columns]).df()
+    else:
+        through = pd.Timestamp(inp.states[(MARKET, MODEL_MARKET)]["through_date"]).date()
+        df = con.execute(sql("estimation.factor_returns_of_after"), [columns, through]).df()
+    x = df.pivot(index="date", columns="factor_id", values="ret").reindex(columns=columns).dropna()
+    x.columns.name = None
+    return MarketInput(tuple(columns), refit, x)
+
+
+def run_market(inp, config, *, refit_all: bool, rederive: bool) -> MarketOutput | None:
+    mk = inp.market
+    if mk is None:
+        return None
+    columns = list(mk.columns)
+    x = mk.matrix
     if x.empty:
         return None
     dates = x.index.to_numpy().astype("datetime64[D]")
     state_row = inp.states.get((MARKET, MODEL_MARKET))
     fit_row = inp.fits.get((MARKET, MODEL_MARKET))
     vintage = int(inp.vintages.get(MARKET, 0))
-    prev_params = None
-    if fit_row is not None and fit_row["status"] == "ok":
-        prev_params = MarketRegimeParams.from_dict(_params_only(fit_row["params_json"]))
+    prev_params = _previous(inp)
     same_columns = prev_params is not None and tuple(prev_params.columns or ()) == tuple(columns)
     through = None
     if state_row is not None:
         through = np.datetime64(pd.Timestamp(state_row["through_date"]).date(), "D")
-    if state_row is None or not same_columns or refit_all or rederive:
+    if mk.refit:
         m = config.models
         model = MarketRegimeModel(
             states=tuple(range(m.market_states_min, m.market_states_max + 1)) if m.market_states_min >= 2 else (2,),
@@ -109,7 +153,7 @@ def run_market(inp, config, *, refit_all: bool, rederive: bool) -> MarketOutput 
         return None
     state = RegimeFilterState.from_dict(json.loads(state_row["state_json"]))
     flt = market_filter(x.to_numpy()[new], prev_params, state)
-    return MarketOutput("advance", tuple(columns), None, _params_only(fit_row["params_json"]),
+    return MarketOutput("advance", tuple(columns), None, _previous_with_dict(inp)[1],
                         flt.state.to_dict(), dates[new], flt.filtered, flt.predicted, dates[-1], vintage, None)
 
 

@@ -1,0 +1,222 @@
+"""One cell of ``tracker bench`` (N factors x T days) and the ingest-throughput run.
+
+See :mod:`tracker.service.bench` for what is measured; every function here returns
+plain dicts of numbers (seconds, counts, log-likelihoods) for the JSON.
+"""
+
+from __future__ import annotations
+
+import math
+import shutil
+import time
+import warnings
+from collections import Counter
+from pathlib import Path
+
+import numpy as np
+
+from tracker.service import estimate as est
+from tracker.service.bench_data import drop_text, load_panel, make_panel, write_drop
+from tracker.service.executor import LocalProcessExecutor, executor_for
+from tracker.store.bootstrap import open_store
+
+
+def _executor(spec: dict, config):
+    return LocalProcessExecutor(spec["workers"]) if spec.get("workers") else executor_for(config)
+
+
+def timed_update(store, config, executor=None, *, refit=None, only=None) -> dict:
+    """One ``update()`` with its wall time, plan counts, phase times and model CPU seconds."""
+    cpu: Counter = Counter()
+    n_tasks = [0]
+
+    def observe(out) -> None:
+        n_tasks[0] += 1
+        for model, sec in out.timings.items():
+            cpu[model] += sec
+
+    t0 = time.perf_counter()
+    summary = est.update(store, config, refit=refit, only=only, executor=executor, observer=observe)
+    wall = time.perf_counter() - t0
+    kinds = Counter(k for f, k in summary.kinds.items() if not f.startswith("*"))
+    return {"wall_s": wall, "tasks": n_tasks[0], "kinds": dict(kinds),
+            "market": summary.kinds.get("*market*"), "phases_s": dict(summary.timings),
+            "model_cpu_s": dict(cpu), "rows_written": summary.rows_written, "skipped": summary.skipped}
+
+
+# ---------------------------------------------------------------------- naive loop
+
+
+def _our_logliks(store) -> dict:
+    with store.connect() as con:
+        rows = con.execute("SELECT subject_id, model, loglik, status FROM model_fits WHERE is_current").fetchall()
+    return {(s, m): (ll, st) for s, m, ll, st in rows}
+
+
+def naive_loop(store, panel, k: int) -> dict:
+    """Cold statsmodels fits one factor after another, and ours against theirs.
+
+    Compared log-likelihoods (decimal returns, exact diffuse for the local level):
+    ``regimes`` -- the same model (MarkovRegression, 2 regimes, switching mean and
+    variance) fitted by our service vs one cold default fit; ``premium_same_model`` --
+    the homoskedastic local level (h = 1) fitted by our MLE vs ``UnobservedComponents``;
+    ``premium_models`` -- our heteroskedastic premium model (c h_t, q at its drift floor
+    where the MLE is below it) vs the homoskedastic UC fit: different models on the same
+    data, reported, not a target.
+    """
+    import statsmodels.api as sm
+
+    from tracker.estimation.local_level import fit_local_level
+
+    ours = _our_logliks(store)
+    t = panel.n_days
+    k = min(k, panel.n_factors)
+    uc_s = mr_s = 0.0
+    rel = {"regimes": [], "premium_same_model": [], "premium_models": []}
+    failed = 0
+    for i in range(k):
+        fid, y = panel.factor_ids[i], panel.returns[:t, i]
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            t0 = time.perf_counter()
+            try:
+                uc = sm.tsa.UnobservedComponents(y, level="llevel", use_exact_diffuse=True).fit(disp=False)
+                uc_ll = float(uc.llf)
+            except Exception:
+                uc_ll, failed = float("nan"), failed + 1
+            t1 = time.perf_counter()
+            try:
+                mr = sm.tsa.MarkovRegression(y, k_regimes=2, trend="c", switching_variance=True).fit(disp=False)
+                mr_ll = float(mr.llf)
+            except Exception:
+                mr_ll, failed = float("nan"), failed + 1
+            t2 = time.perf_counter()
+        uc_s += t1 - t0
+        mr_s += t2 - t1
+        same = fit_local_level(y, np.ones_like(y)).loglik
+        for key, a, b in (("regimes", ours.get((fid, "regimes"), (None,))[0], mr_ll),
+                          ("premium_same_model", same, uc_ll),
+                          ("premium_models", ours.get((fid, "premium"), (None,))[0], uc_ll)):
+            if a is not None and math.isfinite(a) and math.isfinite(b):
+                rel[key].append((a - b) / abs(b))
+    out = {"factors": k, "uc_s": uc_s, "markov_s": mr_s, "wall_s": uc_s + mr_s,
+           "per_factor_s": (uc_s + mr_s) / max(k, 1), "failed_fits": failed}
+    for key, vals in rel.items():
+        v = np.asarray(vals, dtype=float)
+        out[f"loglik_{key}"] = {
+            "compared": int(v.size),
+            "ours_minus_naive_rel_min": float(v.min()) if v.size else None,
+            "ours_minus_naive_rel_median": float(np.median(v)) if v.size else None,
+            "n_worse_than_1e-6": int((v < -1e-6).sum()),
+        }
+    return out
+
+
+# ---------------------------------------------------------------------- incremental
+
+
+def incremental(store, config, panel, k: int, offset: int, executor) -> dict:
+    """Drop ``k`` new days for every factor, ingest them, bring the estimates up to date."""
+    from tracker.ingest.inbox import process_inbox
+
+    t = panel.n_days
+    rows = slice(t + offset, t + offset + k)
+    inbox = config.inbox_path(store.folder)
+    write_drop(inbox, f"bench-{offset:04d}-{k}d.sql", drop_text(panel, rows))
+    t0 = time.perf_counter()
+    outcomes = process_inbox(store, config)
+    ingest_s = time.perf_counter() - t0
+    _, plans = est._read_inputs(store, config, market=False)       # which plans are due (not timed)
+    kinds = Counter(p.kind for p in plans)
+    advance = {p.factor_id for p in plans if p.kind == "advance"}
+    first = timed_update(store, config, executor, only=advance) if advance else None
+    rest = timed_update(store, config, executor)
+    adv_s = first["wall_s"] if first else 0.0
+    return {
+        "new_days": k, "new_rows": k * panel.n_factors, "ingest_s": ingest_s,
+        "ingest_outcomes": dict(Counter(o.outcome for o in outcomes)),
+        "plans": dict(kinds), "advance_s": adv_s, "advance_update": first,
+        "due_s": rest["wall_s"], "due_update": rest,
+        "advance_end_to_end_s": ingest_s + adv_s,
+        "end_to_end_s": ingest_s + adv_s + rest["wall_s"],
+    }
+
+
+# ---------------------------------------------------------------------- the cell
+
+
+def run_cell(spec: dict) -> dict:
+    from tracker.service.bench_state import build_borrowed_state
+    from tracker.service.bench_ui import time_ui
+
+    n, t = spec["n"], spec["t"]
+    folder = Path(spec["folder"])
+    shutil.rmtree(folder, ignore_errors=True)
+    store, config = open_store(folder / "store.duckdb", create_demo=False)
+    executor = _executor(spec, config)
+    panel = make_panel(n, t, extra_days=sum(spec["new_days"]), seed=spec["seed"])
+    out: dict = {"factors": n, "days": t, "full_refit": None, "warm_refit": None, "naive": None,
+                 "borrowed_state": None, "sample_refit": None, "ui": None}
+    t0 = time.perf_counter()
+    out["rows_loaded"] = load_panel(store, panel)
+    out["load_s"] = time.perf_counter() - t0
+    if n <= spec["refit_max"]:
+        out["state"] = "refit"
+        out["full_refit"] = timed_update(store, config, executor)
+        out["full_refit"]["per_factor_s"] = out["full_refit"]["wall_s"] / n
+        out["naive"] = naive_loop(store, panel, spec["naive_factors"] or n)
+        if spec["warm_refit"]:
+            out["warm_refit"] = timed_update(store, config, executor, refit=set())
+            out["warm_refit"]["per_factor_s"] = out["warm_refit"]["wall_s"] / n
+    else:
+        out["state"] = "borrowed"
+        t0 = time.perf_counter()
+        out["borrowed_state"] = build_borrowed_state(store, config, panel, executor=executor)
+        out["borrowed_state"]["wall_s"] = time.perf_counter() - t0
+    out["incremental"] = []
+    offset = 0
+    for k in spec["new_days"]:
+        out["incremental"].append(incremental(store, config, panel, k, offset, executor))
+        offset += k
+    if out["state"] == "borrowed" and spec["sample_refit"] > 0:
+        ids = set(panel.factor_ids[: min(spec["sample_refit"], n)])
+        r = timed_update(store, config, executor, refit=ids, only=ids)
+        r["factors"] = len(ids)
+        r["per_factor_s"] = r["wall_s"] / len(ids)
+        r["projected_full_refit_s"] = r["per_factor_s"] * n      # a projection, named as one
+        out["sample_refit"] = r
+    if spec.get("ui_here"):
+        out["ui"] = time_ui(store, config, n)
+    with store.connect() as con:
+        out["store_rows"] = {tbl: int(con.execute(f"SELECT count(*) FROM {tbl}").fetchone()[0])
+                             for tbl in ("factor_returns", "premium_estimates", "regime_estimates", "warnings")}
+    out["store_mb"] = sum(p.stat().st_size for p in folder.glob("store.duckdb*")) / 2**20
+    return out
+
+
+def run_ingest(spec: dict) -> dict:
+    """One drop file of ``ingest_rows`` factor-return rows into a store with the factors declared."""
+    from tracker.ingest.inbox import process_inbox
+
+    rows = int(spec["ingest_rows"])
+    n_factors = max(1, min(200, rows))
+    days = math.ceil(rows / n_factors)
+    folder = Path(spec["folder"])
+    shutil.rmtree(folder, ignore_errors=True)
+    store, config = open_store(folder / "store.duckdb", create_demo=False)
+    panel = make_panel(n_factors, 2, extra_days=days, seed=spec["seed"])
+    load_panel(store, panel)
+    text = drop_text(panel, slice(2, 2 + days))
+    size = len(text.encode("utf-8"))
+    inbox = config.inbox_path(store.folder)
+    write_drop(inbox, "bench-ingest.sql", text)
+    del text
+    t0 = time.perf_counter()
+    outcomes = process_inbox(store, config)
+    seconds = time.perf_counter() - t0
+    o = outcomes[0] if outcomes else None
+    written = int(sum(o.rows_written.values())) if o is not None else 0
+    return {"rows": n_factors * days, "factors": n_factors, "days": days, "file_mb": size / 2**20,
+            "seconds": seconds, "rows_per_s": written / seconds if seconds > 0 else None,
+            "rows_written": written, "outcome": None if o is None else o.outcome,
+            "reason": None if o is None else o.reason, "first_day": str(panel.dates[2])}

@@ -1,0 +1,206 @@
+"""Reading the estimation inputs and writing the results, in as few statements as possible.
+
+Reads (one short connection): small tables in full, and per factor a row summary
+(counts and dates, from one aggregate) instead of its whole history. Returns are read
+whole only where a model is fitted, a history re-derived, or a stored summary is missing
+(:func:`read_returns`); an advance reads only the rows after each filter state. Writes:
+one frame per table for all factors (premium and regime estimates, warnings, filter
+states, runs), so a day's update of hundreds of factors is a handful of statements.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from datetime import datetime, timedelta
+
+import numpy as np
+import pandas as pd
+
+from tracker.store.sqlfiles import sql
+
+
+@dataclass(frozen=True)
+class RowInfo:
+    """Counts and dates of one factor's stored returns."""
+
+    n_rows: int
+    n_finite: int
+    first: np.datetime64
+    last: np.datetime64
+    last_finite: np.datetime64 | None
+    n_before: int            # rows up to the premium filter state's date (all rows without a state)
+    since_fit: int           # rows after the current premium fit's data (0 without a state)
+
+
+@dataclass
+class Inputs:
+    read_at: datetime
+    factors: pd.DataFrame
+    rows: dict                         # factor_id -> RowInfo
+    fits: dict                         # (subject, model) -> dict row
+    states: dict                       # (subject, model) -> dict row, with "state" parsed
+    vintages: dict
+    revisions: dict                    # factor_id -> first revised date
+    recent_revisions: dict
+    latest_codes: dict
+    stamps: dict
+    returns: dict = field(default_factory=dict)   # factor_id -> (dates, values), see `full`
+    full: set = field(default_factory=set)        # factors whose whole history is in `returns`
+    history: dict = field(default_factory=dict)   # factor_id -> (premium df, regime df), stored
+    market: object = None                         # market_mod.MarketInput
+    freq: dict = field(default_factory=dict)      # factor_id -> frequency
+
+
+def _day(x) -> np.datetime64 | None:
+    return None if x is None or pd.isna(x) else np.datetime64(pd.Timestamp(x).date(), "D")
+
+
+def read_meta(con) -> Inputs:
+    read_at = con.execute("SELECT current_timestamp").fetchone()[0]
+    factors = con.execute(sql("estimation.factors")).df()
+    after = {r[0]: (int(r[1]), int(r[2])) for r in con.execute(sql("estimation.rows_after_state")).fetchall()}
+    rows = {}
+    for r in con.execute(sql("estimation.row_counts")).fetchall():
+        n_after, since_fit = after.get(r[0], (0, 0))
+        rows[r[0]] = RowInfo(int(r[1]), int(r[2]), _day(r[3]), _day(r[4]), _day(r[5]), int(r[1]) - n_after, since_fit)
+    cur = con.execute(sql("estimation.current_fits"))
+    names = [d[0] for d in cur.description]
+    fits = {}
+    for values in cur.fetchall():
+        rec = dict(zip(names, values))
+        fits[(rec["subject_id"], rec["model"])] = rec
+    states = {}
+    for subject, model, fit_id, through, text in con.execute(sql("estimation.filter_states")).fetchall():
+        states[(subject, model)] = {"subject_id": subject, "model": model, "fit_id": fit_id,
+                                    "through_date": through, "state_json": text, "state": json.loads(text)}
+    vintages = dict(con.execute(sql("estimation.current_vintage")).fetchall())
+    revisions = {r[0]: r[1] for r in con.execute(sql("estimation.pending_revisions")).fetchall()}
+    since = (read_at - timedelta(days=7)) if read_at is not None else datetime(1970, 1, 1)
+    recent = dict(con.execute(sql("estimation.recent_revision_counts"), [since]).fetchall())
+    codes = {r[0]: set(r[1]) for r in con.execute(sql("estimation.latest_warning_codes")).fetchall()}
+    stamps = {(r[0], r[1]): r[3] for r in con.execute(sql("estimation.state_stamps")).fetchall()}
+    return Inputs(read_at, factors, rows, fits, states, vintages, revisions, recent, codes, stamps)
+
+
+def _grouped(df: pd.DataFrame) -> dict:
+    out = {}
+    if df.empty:
+        return out
+    ids = df["factor_id"].to_numpy()
+    dates = df["date"].to_numpy().astype("datetime64[D]")
+    vals = df["ret"].to_numpy(dtype=float)
+    cuts = np.flatnonzero(ids[1:] != ids[:-1]) + 1
+    for a, b in zip(np.r_[0, cuts], np.r_[cuts, ids.size]):
+        out[ids[a]] = (dates[a:b], vals[a:b])
+    return out
+
+
+def read_returns(con, inp: Inputs, full_ids: set[str], history_ids: set[str]) -> None:
+    """Whole histories for ``full_ids``, rows after the filter state for the others."""
+    if full_ids:
+        inp.returns.update(_grouped(con.execute(sql("estimation.factor_returns_of"), [sorted(full_ids)]).df()))
+        inp.full |= set(full_ids)
+    tail = _grouped(con.execute(sql("estimation.factor_returns_after_states")).df())
+    for fid, v in tail.items():
+        if fid not in inp.full:
+            inp.returns[fid] = v
+    for fid in sorted(history_ids):
+        prem = con.execute(sql("estimation.current_premium_history"), [fid]).df()
+        reg = con.execute(sql("estimation.current_regime_history"), [fid]).df()
+        inp.history[fid] = (prem, reg)
+
+
+def stored_history(inp: Inputs, fid: str, before: np.datetime64 | None, k: int):
+    """Arrays over the stored rows dated before ``before`` (all rows when None), aligned
+    with the factor's returns: dates, returns, premium, premium_var, std_error, loglik_t
+    and regime probabilities (T, k) (None when k == 0); NaN where nothing is stored."""
+    dates, values = inp.returns[fid]
+    keep = np.ones(dates.size, bool) if before is None else dates < before
+    dates, values = dates[keep], values[keep]
+    prem, reg = inp.history[fid]
+    hist = prem.set_index(prem["date"].to_numpy().astype("datetime64[D]")).reindex(dates)
+    if k:
+        reg_map = {np.datetime64(pd.Timestamp(d).date(), "D"): v for d, v in zip(reg["date"], reg["filtered"])}
+        regimes = np.array([reg_map.get(d, [np.nan] * k) for d in dates], dtype=float).reshape(-1, k)
+    else:
+        regimes = None
+    return (dates, values, hist["premium"].to_numpy(float), hist["premium_sd"].to_numpy(float) ** 2,
+            hist["std_error"].to_numpy(float), hist["loglik_t"].to_numpy(float), regimes)
+
+
+# ---------------------------------------------------------------------- writing
+
+
+def premium_columns(out, m: np.ndarray, ppy: int) -> dict:
+    sd = np.sqrt(out.premium_var[m])
+    prem = out.premium[m]
+    return {
+        "date": out.dates[m].astype("datetime64[ns]"),
+        "premium": prem,
+        "premium_sd": sd,
+        "premium_ann": prem * ppy,
+        "premium_ann_sd": sd * ppy,
+        "regime_premium": out.regime_premium[m],
+        "regime_premium_sd": np.sqrt(out.regime_premium_var[m]),
+        "vol_forecast": out.vol_forecast[m],
+        "sharpe_ann": prem / out.vol_forecast[m] * np.sqrt(ppy),
+        "snr": out.snr[m],
+        "std_error": out.std_error[m],
+        "loglik_t": out.loglik_t[m],
+    }
+
+
+class FrameBatch:
+    """Rows of many factors for one table, inserted as few frames (``limit`` rows each).
+
+    ``add(const, cols)``: ``const`` holds the values shared by the rows (ids, vintage,
+    fit id), ``cols`` aligned arrays or lists. A backfill of long histories flushes every
+    ``limit`` rows so its frames stay small; a day's update of every factor is one insert.
+    """
+
+    def __init__(self, con, query: str, limit: int = 400_000) -> None:
+        self.con, self.query, self.limit = con, query, limit
+        self.parts: list[tuple[dict, dict, int]] = []
+        self.pending = 0
+        self.written = 0
+
+    def add(self, const: dict, cols: dict) -> None:
+        n = len(next(iter(cols.values()))) if cols else 0
+        if not n:
+            return
+        self.parts.append((const, cols, n))
+        self.pending += n
+        if self.pending >= self.limit:
+            self.flush()
+
+    def flush(self) -> None:
+        if self.parts:
+            self.written += insert_frame(self.con, self.query, self._frame())
+        self.parts, self.pending = [], 0
+
+    def _frame(self) -> pd.DataFrame:
+        first_const, first_cols, _ = self.parts[0]
+        idx = np.repeat(np.arange(len(self.parts)), [n for _, _, n in self.parts])
+        data = {}
+        for key in first_const:
+            values = [c[key] for c, _, _ in self.parts]
+            if all(v is None or (isinstance(v, (int, np.integer)) and not isinstance(v, bool)) for v in values):
+                data[key] = pd.array(values, dtype="Int64")[idx]
+            else:
+                data[key] = np.array(values, dtype=object)[idx]
+        for key, sample in first_cols.items():
+            chunks = [cols[key] for _, cols, _ in self.parts]
+            data[key] = [v for ch in chunks for v in ch] if isinstance(sample, list) else np.concatenate(chunks)
+        return pd.DataFrame(data)
+
+
+def insert_frame(con, query: str, frame: pd.DataFrame) -> int:
+    if frame is None or not len(frame):
+        return 0
+    con.register("incoming_frame", frame)
+    try:
+        con.execute(sql(query))
+    finally:
+        con.unregister("incoming_frame")
+    return len(frame)

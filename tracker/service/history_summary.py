@@ -1,0 +1,382 @@
+"""What the latest-date warnings need from a factor's whole stored history, in O(1) space.
+
+The latest-date rules (:func:`tracker.service.factor_warnings.latest_warnings`) read a
+factor's whole history: the Newey-West test of its mean (and, through it, the adjusted
+p-values of the whole tracked set), the drift statistic's baseline, the longest gap, the
+longest repeated run and the median spacing of its dates. Re-reading and re-scanning
+that history on every daily update makes the update cost grow with the history, so each
+factor keeps a small :class:`HistorySummary` beside its filter state (``state_json``,
+key ``"history"``), advanced with the rows each update stores:
+
+* :class:`LagSums` -- count, sum, lagged cross-products for lags 0..MAX_LAG and the first
+  and last MAX_LAG values: the Bartlett-weighted (Newey & West 1987) sum of demeaned
+  autocovariances at any lag up to MAX_LAG, equal (to rounding) to
+  :func:`tracker.estimation.significance.newey_west_mean` and ``long_run_variance`` on
+  the whole series, since sum_t (x_t - m)(x_{t-j} - m) = C_j - m (A_j + B_j) + (n - j) m^2;
+* the last few hundred finite standardized errors (MISFIT, OUTLIER), premium rows
+  (FRAGILE, HINDSIGHT_GAP) and finite regime rows (REGIME_AMBIG, REGIME_FLIP);
+* the log-likelihood baseline as LagSums plus the recent window (DRIFT);
+* the longest gap with its start and the total missing (GAP), the longest run of one
+  value (REPEATED), a histogram of date spacings (FREQ_MISMATCH), the count and the
+  last date (IMPLAUSIBLE_SR, STALE).
+
+The summary depends on the warning thresholds that size its tails; a summary made under
+other thresholds is not used (the service then rebuilds it from the whole history).
+"""
+
+from __future__ import annotations
+
+import base64
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from tracker.estimation import significance as sig
+from tracker.estimation import warning_rules as wr
+
+MAX_LAG = 48          # newey_west_lags reaches 48 only beyond ~13 million rows
+VERSION = 1
+
+
+def pack(values) -> str:
+    """Floats as base64 of little-endian float64: exact, and 5-10x faster to store and
+    read back than JSON numbers (a summary holds about a thousand of them)."""
+    return base64.b64encode(np.asarray(values, dtype="<f8").tobytes()).decode("ascii")
+
+
+def unpack(text: str) -> list[float]:
+    return np.frombuffer(base64.b64decode(text), dtype="<f8").tolist()
+
+
+@dataclass
+class LagSums:
+    """Running sums of a series x_0..x_{n-1} for Bartlett long-run variances."""
+
+    n: int = 0
+    total: float = 0.0
+    cross: list = field(default_factory=lambda: [0.0] * (MAX_LAG + 1))   # C_j = sum_t x_t x_{t-j}
+    head: list = field(default_factory=list)                            # first min(n, MAX_LAG)
+    tail: list = field(default_factory=list)                            # last min(n, MAX_LAG)
+
+    @classmethod
+    def of(cls, x: np.ndarray) -> LagSums:
+        x = np.asarray(x, dtype=float)
+        n = x.size
+        cross = [float(x @ x)] + [float(x[j:] @ x[:-j]) if j < n else 0.0 for j in range(1, MAX_LAG + 1)]
+        return cls(n, float(x.sum()), cross, x[:MAX_LAG].tolist(), x[-MAX_LAG:].tolist() if n else [])
+
+    def extend(self, values) -> None:
+        cross, tail, head = self.cross, self.tail, self.head
+        for v in values:
+            v = float(v)
+            cross[0] += v * v
+            for j in range(1, len(tail) + 1):
+                cross[j] += v * tail[-j]
+            self.total += v
+            self.n += 1
+            if len(head) < MAX_LAG:
+                head.append(v)
+            tail.append(v)
+            if len(tail) > MAX_LAG:
+                del tail[0]
+
+    def values_if_short(self) -> np.ndarray | None:
+        """The whole series when it fits in ``head`` (then the library is used directly)."""
+        return np.asarray(self.head, dtype=float) if self.n <= MAX_LAG else None
+
+    def bartlett_sum(self, lags: int) -> float:
+        """sum_t u_t^2 + 2 sum_{j=1..L} (1 - j/(L+1)) sum_t u_t u_{t-j}, u = x - mean."""
+        n, tot = self.n, self.total
+        m = tot / n
+        s = 0.0
+        for j in range(lags + 1):
+            a = tot - math.fsum(self.head[:j])                  # sum_{t >= j} x_t
+            b = tot - (math.fsum(self.tail[-j:]) if j else 0.0)  # sum_{t <= n-1-j} x_t
+            g = self.cross[j] - m * (a + b) + (n - j) * m * m
+            s += g if j == 0 else 2.0 * (1.0 - j / (lags + 1.0)) * g
+        return s
+
+    def mean_test(self) -> sig.MeanTest | None:
+        """:func:`sig.newey_west_mean` of the series (None beyond MAX_LAG lags)."""
+        short = self.values_if_short()
+        if short is not None:
+            return sig.newey_west_mean(short)
+        n = self.n
+        lag = sig.newey_west_lags(n)
+        if lag > MAX_LAG:
+            return None
+        mean = self.total / n
+        var = self.bartlett_sum(lag) / n**2
+        if not var > 0.0:
+            return sig.newey_west_mean(np.full(n, mean))   # the library's zero-variance result
+        se = math.sqrt(var)
+        t = mean / se
+        return sig.MeanTest("ok", "", mean, se, t, float(sig.two_sided_p_value(t)), n, lag, False)
+
+    def long_run_variance(self) -> float | None:
+        short = self.values_if_short()
+        if short is not None:
+            return sig.long_run_variance(short)
+        lag = max(0, min(sig.newey_west_lags(self.n), self.n - 1))
+        if lag > MAX_LAG:
+            return None
+        return self.bartlett_sum(lag) / self.n
+
+    def to_dict(self) -> dict:
+        return {"n": self.n, "total": self.total, "cross": pack(self.cross), "head": pack(self.head),
+                "tail": pack(self.tail)}
+
+    @classmethod
+    def from_dict(cls, d: dict) -> LagSums:
+        return cls(int(d["n"]), float(d["total"]), unpack(d["cross"]), unpack(d["head"]), unpack(d["tail"]))
+
+
+def sizes_for(th: wr.WarningThresholds, hindsight_rows: int) -> dict | None:
+    """Tail lengths the rules need under ``th``; None when a rule needs the whole history."""
+    if th.misfit_window <= 0:
+        return None
+    return {
+        "errors": int(max(th.misfit_window, th.outlier_lookback, 1)),
+        "premium": int(max(hindsight_rows, th.fragile_drop_last + 1)),
+        "regimes": int(th.regime_flip_periods + 2),
+        "drift_window": int(th.drift_window),
+    }
+
+
+@dataclass
+class HistorySummary:
+    """The summary of one factor's stored history (see the module docstring)."""
+
+    sizes: dict
+    frequency: str
+    n_rows: int = 0                    # rows of the series, missing returns included
+    returns: LagSums = field(default_factory=LagSums)      # finite returns
+    last_date: str | None = None       # of the last finite return
+    loglik_base: LagSums = field(default_factory=LagSums)
+    loglik_window: list = field(default_factory=list)
+    errors: list = field(default_factory=list)
+    premium: list = field(default_factory=list)
+    premium_var: list = field(default_factory=list)
+    regimes: list = field(default_factory=list)
+    gap: dict = field(default_factory=lambda: {"longest": 0, "start": None, "total": 0})
+    run: dict = field(default_factory=lambda: {"best": 0, "end": -1, "value": None, "cur": 0, "cur_value": None})
+    spacing: dict = field(default_factory=dict)           # days between finite dates -> count
+
+    # ------------------------------------------------------------------ building
+
+    @classmethod
+    def empty(cls, sizes: dict, frequency: str) -> HistorySummary:
+        return cls(sizes=dict(sizes), frequency=frequency)
+
+    def extend(self, dates: np.ndarray, returns: np.ndarray, premium: np.ndarray, premium_var: np.ndarray,
+               std_error: np.ndarray, loglik: np.ndarray, regime_filtered: np.ndarray | None) -> None:
+        """Append rows (aligned arrays, shape (k,); regimes (k, K)) as they are stored."""
+        sz = self.sizes
+        returns = np.asarray(returns, dtype=float)
+        finite = np.isfinite(returns)
+        self.n_rows += returns.size
+        vals = returns[finite]
+        if self.returns.n == 0:
+            self.returns = LagSums.of(vals)        # a whole history: vectorised
+        else:
+            self.returns.extend(vals)
+        self._extend_dates(np.asarray(dates).astype("datetime64[D]")[finite])
+        self._extend_runs(vals)
+        e = np.asarray(std_error, dtype=float)
+        self.errors = (self.errors + e[np.isfinite(e)][-sz["errors"]:].tolist())[-sz["errors"]:]
+        self._extend_loglik(np.asarray(loglik, dtype=float))
+        p = sz["premium"]
+        self.premium = (self.premium + np.asarray(premium, float)[-p:].tolist())[-p:]
+        self.premium_var = (self.premium_var + np.asarray(premium_var, float)[-p:].tolist())[-p:]
+        if regime_filtered is not None:
+            r = np.asarray(regime_filtered, dtype=float)
+            ok = np.all(np.isfinite(r), axis=1)
+            self.regimes = (self.regimes + r[ok][-sz["regimes"]:].tolist())[-sz["regimes"]:]
+
+    def _extend_dates(self, d: np.ndarray) -> None:
+        if d.size == 0:
+            return
+        prev = np.datetime64(self.last_date, "D") if self.last_date else None
+        if prev is not None and d.size == 1 and self.frequency == "daily":
+            self._extend_one_day(prev, d[0])      # the daily update: no array machinery
+            return
+        seq = np.concatenate([[prev], d]) if prev is not None else d
+        if seq.size >= 2:
+            if self.frequency == "daily":
+                missing = np.busday_count(seq[:-1] + 1, seq[1:])
+            else:
+                missing = np.diff(wr._period_index(seq, self.frequency)) - 1
+            i = int(np.argmax(missing))
+            if int(missing[i]) > self.gap["longest"]:
+                self.gap["longest"], self.gap["start"] = int(missing[i]), str(seq[i])
+            self.gap["total"] += int(missing[missing > 0].sum())
+            for k, c in zip(*np.unique(np.diff(seq).astype(np.int64), return_counts=True)):
+                self.spacing[str(int(k))] = self.spacing.get(str(int(k)), 0) + int(c)
+        self.last_date = str(d[-1])
+
+    def _extend_one_day(self, prev: np.datetime64, day: np.datetime64) -> None:
+        missing = int(np.busday_count(prev + 1, day))
+        if missing > self.gap["longest"]:
+            self.gap["longest"], self.gap["start"] = missing, str(prev)
+        if missing > 0:
+            self.gap["total"] += missing
+        key = str(int((day - prev).astype(np.int64)))
+        self.spacing[key] = self.spacing.get(key, 0) + 1
+        self.last_date = str(day)
+
+    def _extend_runs(self, vals: np.ndarray) -> None:
+        r = self.run
+        n0 = self.returns.n - vals.size              # values seen before this block
+        for i, v in enumerate(vals.tolist()):
+            if r["cur"] > 0 and v == r["cur_value"]:
+                r["cur"] += 1
+            else:
+                r["cur"], r["cur_value"] = 1, v
+            if r["cur"] > r["best"]:
+                r["best"], r["end"], r["value"] = r["cur"], n0 + i, v
+
+    def _extend_loglik(self, ll: np.ndarray) -> None:
+        w = max(self.sizes["drift_window"], 0)
+        window = np.concatenate([np.asarray(self.loglik_window, dtype=float), ll[np.isfinite(ll)]])
+        cut = max(window.size - w, 0)
+        leaving, window = window[:cut], window[cut:]
+        if self.loglik_base.n == 0:
+            self.loglik_base = LagSums.of(leaving)      # a whole history: vectorised
+        else:
+            self.loglik_base.extend(leaving)
+        self.loglik_window = window.tolist()
+
+    # ------------------------------------------------------------------ reading
+
+    def mean_test(self) -> sig.MeanTest | None:
+        return self.returns.mean_test()
+
+    def drift(self, window: int) -> wr.DriftStatistic | None:
+        """:func:`wr.predictive_loglik_drift` of the whole log-likelihood history."""
+        w = int(window)
+        base = self.loglik_base
+        need = max(2 * w, 30)
+        if w < 1 or base.n < need:
+            return wr.DriftStatistic("too_little_data", "", math.nan, math.nan, math.nan, math.nan,
+                                     max(w, 0), base.n)
+        recent = np.asarray(self.loglik_window, dtype=float)
+        lrv = base.long_run_variance()
+        if lrv is None:
+            return None
+        rm, bm = float(recent.mean()), base.total / base.n
+        short = base.values_if_short()
+        if short is not None:
+            bm = float(short.mean())
+        if not lrv > 0:
+            return wr.DriftStatistic("too_little_data", "", math.nan, rm, bm, 0.0, w, base.n)
+        z = (rm - bm) / math.sqrt(lrv * (1.0 / w + 1.0 / base.n))
+        return wr.DriftStatistic("ok", "", z, rm, bm, math.sqrt(lrv), w, base.n)
+
+    def median_spacing(self) -> float | None:
+        n = sum(self.spacing.values())
+        if n == 0:
+            return None
+        keys = sorted((int(k), c) for k, c in self.spacing.items())
+
+        def at(rank: int) -> int:
+            seen = 0
+            for k, c in keys:
+                seen += c
+                if rank < seen:
+                    return k
+            return keys[-1][0]
+
+        if n % 2:
+            return float(at(n // 2))
+        return (at(n // 2 - 1) + at(n // 2)) / 2.0
+
+    def data_quality_warnings(self, th: wr.WarningThresholds) -> list:
+        """GAP, REPEATED and FREQ_MISMATCH over the whole history, as the rules build them."""
+        out = []
+        n_dates = self.returns.n
+        if n_dates >= 2:
+            if self.frequency == "daily":
+                limit, unit = th.gap_business_days, "business days"
+            else:
+                limit, unit = th.gap_periods, "periods"
+            g = self.gap
+            if g["longest"] >= limit and g["longest"] > 0:
+                out.append(wr._fire("GAP", g["longest"], limit, unit=unit, gap_start=g["start"], total=g["total"]))
+        r = self.run
+        if r["best"] >= th.repeated_run_length and r["best"] > 1:
+            out.append(wr._fire("REPEATED", r["best"], th.repeated_run_length, repeated=float(r["value"]),
+                                end=r["end"]))
+        if n_dates >= 3:
+            median = self.median_spacing()
+            expected = wr.FREQUENCY_DAYS[self.frequency]
+            ratio = median / expected
+            if ratio > th.freq_mismatch_ratio or ratio < 1.0 / th.freq_mismatch_ratio:
+                out.append(wr._fire("FREQ_MISMATCH", median, th.freq_mismatch_ratio,
+                                    expected=expected, frequency=self.frequency))
+        return out
+
+    # ------------------------------------------------------------------ storage
+
+    def to_dict(self) -> dict:
+        k = len(self.regimes[0]) if self.regimes else 0
+        run = dict(self.run)
+        run["value"], run["cur_value"] = pack([_nan(run["value"])]), pack([_nan(run["cur_value"])])
+        return {
+            "version": VERSION, "sizes": self.sizes, "frequency": self.frequency, "n_rows": self.n_rows,
+            "returns": self.returns.to_dict(), "last_date": self.last_date,
+            "loglik_base": self.loglik_base.to_dict(), "loglik_window": pack(self.loglik_window),
+            "errors": pack(self.errors), "premium": pack(self.premium), "premium_var": pack(self.premium_var),
+            "regimes": {"k": k, "values": pack([v for r in self.regimes for v in r])},
+            "gap": self.gap, "run": run, "spacing": self.spacing,
+        }
+
+    @classmethod
+    def from_dict(cls, d: dict) -> HistorySummary:
+        k = int(d["regimes"]["k"])
+        flat = unpack(d["regimes"]["values"])
+        run = dict(d["run"])
+        run["value"], run["cur_value"] = (_none(unpack(run[key])[0]) for key in ("value", "cur_value"))
+        return cls(
+            sizes=dict(d["sizes"]), frequency=d["frequency"], n_rows=int(d["n_rows"]),
+            returns=LagSums.from_dict(d["returns"]), last_date=d["last_date"],
+            loglik_base=LagSums.from_dict(d["loglik_base"]), loglik_window=unpack(d["loglik_window"]),
+            errors=unpack(d["errors"]), premium=unpack(d["premium"]), premium_var=unpack(d["premium_var"]),
+            regimes=[flat[i:i + k] for i in range(0, len(flat), k)] if k else [],
+            gap=dict(d["gap"]), run=run, spacing={str(k_): int(v) for k_, v in d["spacing"].items()},
+        )
+
+    def copy(self) -> HistorySummary:
+        return HistorySummary.from_dict(self.to_dict())
+
+
+def summary_of(sizes: dict, frequency: str, dates, returns, premium, premium_var, std_error, loglik,
+               regime_filtered) -> HistorySummary:
+    """The summary of a whole stored history (aligned arrays, oldest first)."""
+    s = HistorySummary.empty(sizes, frequency)
+    s.extend(dates, returns, premium, premium_var, std_error, loglik, regime_filtered)
+    return s
+
+
+def summary_from_state(state: dict | None, sizes: dict | None, frequency: str) -> HistorySummary | None:
+    """The stored summary when it was made under the same tail sizes, else None."""
+    if not state or sizes is None:
+        return None
+    d = state.get("history")
+    if not d or d.get("version") != VERSION or d.get("sizes") != sizes or d.get("frequency") != frequency:
+        return None
+    try:
+        return HistorySummary.from_dict(d)
+    except (KeyError, TypeError, ValueError):
+        return None
+
+
+def _nan(x) -> float:
+    return float("nan") if x is None else float(x)
+
+
+def _none(x: float):
+    return None if math.isnan(x) else x
+
+
+__all__ = ["HistorySummary", "LagSums", "MAX_LAG", "pack", "sizes_for", "summary_from_state", "summary_of", "unpack"]
