@@ -77,6 +77,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--since-review", action="store_true", help="only what changed since the last review")
     p.set_defaults(handler=_cmd_report)
 
+    p = sub.add_parser("bench", help="benchmark synthetic stores: refit, incremental update, naive loop, ingest, UI, memory")
+    from tracker.service.bench import add_bench_arguments
+
+    add_bench_arguments(p)
+    p.set_defaults(handler=_cmd_bench)
+
     p = sub.add_parser("export", help="write stored tables as CSV or Parquet files")
     p.add_argument("tables", nargs="*", metavar="TABLE", help="tables to export (default: all readable tables)")
     p.add_argument("--format", choices=("csv", "parquet"), default="csv")
@@ -253,6 +259,12 @@ def _cmd_report(args) -> int:
 
     sys.stdout.write(render_report(store, config, args.format, since_review=args.since_review))
     return 0
+
+
+def _cmd_bench(args) -> int:
+    from tracker.service.bench import bench_command
+
+    return bench_command(args, echo=print)
 
 
 def _factor_ids(store) -> set[str]:

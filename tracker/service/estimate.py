@@ -162,11 +162,23 @@ def _plan(inp: Inputs, config: Config, refit_request: set[str] | None, only: set
                 plans.append(Plan(fid, "refit", "schedule", through + 1, vintage))
             elif "DRIFT" in inp.latest_codes.get(fid, set()):
                 plans.append(Plan(fid, "refit", "drift", through + 1, vintage))
+            elif _short_fit_now_estimable(inp, fid, row, config):
+                plans.append(Plan(fid, "refit", "enough data now", through + 1, vintage))
             else:
                 plans.append(Plan(fid, "advance", "new rows", through + 1, vintage))
         elif requested:
             plans.append(Plan(fid, "refit", "request", None, vintage))
     return plans
+
+
+def _short_fit_now_estimable(inp: Inputs, fid: str, row, config: Config) -> bool:
+    """A model that had too little data gets refit once the history is long enough."""
+    needed = {MODEL_PREMIUM: config.models.min_obs, MODEL_REGIMES: 20 * (config.models.regimes * (config.models.regimes + 1))}
+    for model, n_min in needed.items():
+        rec = inp.fits.get((fid, model))
+        if rec is not None and rec["status"] == "too_little_data" and row.n_finite >= n_min:
+            return True
+    return False
 
 
 def _read_inputs(store: Store, config: Config, refit: set[str] | None = None,

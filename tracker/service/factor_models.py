@@ -228,7 +228,10 @@ def run_factor(task: FactorTask) -> FactorOutput:
 
     # 2. premium (local level)
     prev_ll = LocalLevelParams.from_dict(params[MODEL_PREMIUM]) if params.get(MODEL_PREMIUM) else None
-    if task.refit or prev_ll is None:
+    # Parameters are only ever estimated on a refit task (the whole history). An advance
+    # never fits: a model without usable parameters stays without numbers until the
+    # service schedules a refit (estimate._plan does when enough data has arrived).
+    if task.refit:
         fit = fit_local_level(y, h, start=prev_ll, min_obs=s["min_obs"])
         q_floor = drift_floor_q(y, task.frequency, s.get("premium_drift_floor", 0.0))
         fitted, floored = _apply_floor(fit.params.to_dict() if fit.status == "ok" else {}, q_floor)
@@ -259,7 +262,7 @@ def run_factor(task: FactorTask) -> FactorOutput:
 
     # 3. regimes (Markov-switching mean and variance)
     prev_rp = RegimeParams.from_dict(params[MODEL_REGIMES]) if params.get(MODEL_REGIMES) else None
-    if task.refit or prev_rp is None:
+    if task.refit:
         model = MarkovRegimeModel(
             k_regimes=s["regimes"], n_starts=s["regime_starts"], seed=s["seed"],
         )
@@ -288,7 +291,7 @@ def run_factor(task: FactorTask) -> FactorOutput:
 
     # 4. regime-aware premium (Kim filter), driven by the regime transition matrix
     prev_kp = KimParams.from_dict(params[MODEL_REGIME_PREMIUM]) if params.get(MODEL_REGIME_PREMIUM) else None
-    if rp is not None and (task.refit or prev_kp is None):
+    if rp is not None and task.refit:
         kfit = fit_kim(y, h, np.asarray(rp.transition), start=prev_kp, min_obs=s["min_obs"])
         q_floor = drift_floor_q(y, task.frequency, s.get("premium_drift_floor", 0.0))
         kfitted, floored = _apply_floor(kfit.params.to_dict() if kfit.status == "ok" and kfit.params else {}, q_floor)
@@ -299,7 +302,7 @@ def run_factor(task: FactorTask) -> FactorOutput:
         status[MODEL_REGIME_PREMIUM], message[MODEL_REGIME_PREMIUM] = kfit.status, kfit.message
     elif rp is None and task.refit:
         params[MODEL_REGIME_PREMIUM] = {}
-    if rp is not None and not (task.refit or prev_kp is None):
+    if rp is not None and not task.refit:
         kp = prev_kp
     else:
         kp = KimParams.from_dict(params[MODEL_REGIME_PREMIUM]) if params.get(MODEL_REGIME_PREMIUM) else None
