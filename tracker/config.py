@@ -45,6 +45,9 @@ class ModelSettings:
     ewma_decay_monthly: float = 0.97
     regimes: int = 2                # per-factor Markov-switching regimes: 2 or 3
     regime_starts: int = 4          # starting points per Markov-switching fit (seeded)
+    regime_premium_q: str = "shared"   # 'shared': the regime-aware premium uses the plain local
+                                       # level's q (two-step, like its transition matrix);
+                                       # 'free': its own maximum-likelihood q
     market_states_min: int = 2
     market_states_max: int = 4
     market_seeds: int = 3
@@ -75,6 +78,7 @@ class UISettings:
 
 _CHOICES: dict[tuple[str, str], tuple[Any, ...]] = {
     ("models", "volatility"): ("ewma", "garch"),
+    ("models", "regime_premium_q"): ("shared", "free"),
     ("models", "regimes"): (2, 3),
 }
 _RANGES: dict[tuple[str, str], tuple[float, float]] = {

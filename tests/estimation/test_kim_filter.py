@@ -218,3 +218,21 @@ def test_params_and_state_round_trip_json():
 def test_too_little_data_is_a_result():
     fit = fit_kim(np.array([0.01, -0.01, 0.02]), np.full(3, 1e-4), TWO)
     assert fit.status == "too_little_data" and fit.params is None and np.isnan(fit.loglik)
+
+
+def test_q_floor_is_a_bound_of_the_search():
+    # A stated floor above the unconstrained estimate: the search ends on it, c is
+    # estimated at the q used, and a constrained maximum cannot beat the free one.
+    y, h, s, scale, q = _regime_simulation(seed=8)
+    free = fit_kim(y, h, TWO)
+    floor = max(free.params.q, 1e-12) * 50.0
+    bound = fit_kim(y, h, TWO, q_min=floor)
+    assert bound.status == "ok" and bound.params.q == floor
+    assert "floor" in bound.message
+    assert bound.loglik <= free.loglik + 1e-6
+    # the same as holding q fixed at the floor (the maximum is on the bound)
+    held = fit_kim(y, h, TWO, fixed_q=floor)
+    np.testing.assert_allclose(bound.params.c, held.params.c, rtol=1e-3)
+    # a floor below the estimate does not bind
+    low = fit_kim(y, h, TWO, q_min=free.params.q / 50.0 if free.params.q > 0 else 1e-30)
+    assert low.loglik == pytest.approx(free.loglik, abs=1e-3)

@@ -536,7 +536,7 @@ def _failed(status: str, message: str, n_iter: int = 0) -> KimFit:
 
 def fit_kim(y, h, transition, mean_shift: bool = False, fixed_q: float | None = None,
             prior: FilterState | None = None, start: KimParams | None = None,
-            initial_prob=None, min_obs: int = 60) -> KimFit:
+            initial_prob=None, min_obs: int = 60, q_min: float | None = None) -> KimFit:
     """Maximum likelihood of ``q``, ``c[0..K-1]`` (and ``m[1..K-1]``) at a given transition.
 
     The transition matrix is taken from the regime model and held fixed, so regime labels
@@ -563,6 +563,11 @@ def fit_kim(y, h, transition, mean_shift: bool = False, fixed_q: float | None = 
         Regime distribution of the row before the first (default stationary).
     min_obs : int
         Fewer valid observations give 'too_little_data'.
+    q_min : float, optional
+        A lower bound on ``q`` (a stated prior floor on the drift): the estimate is the
+        likelihood's maximum subject to it, so ``c`` is estimated at the ``q`` used.
+        Where the unconstrained maximum lies below the floor (the common case for a
+        slow drift) the search ends on the bound in a few steps.
 
     Returns
     -------
@@ -592,6 +597,9 @@ def fit_kim(y, h, transition, mean_shift: bool = False, fixed_q: float | None = 
     # and stops 1e-4 below it (a flat likelihood down there is reported as q = 0).
     lo = max(_LOG_SNR_BOUNDS[0], math.log(1e-4 / n_valid**2))
     hi = _LOG_SNR_BOUNDS[1]
+    floored = q_min is not None and q_min > 0 and math.log(q_min / h_bar) > lo
+    if floored:
+        lo = min(math.log(q_min / h_bar), hi)
     x0 = np.concatenate((
         [min(max(math.log(max(start.q / h_bar, 1.0 / n_valid**2)), lo), hi)] if free_q else [],
         np.clip(np.log(np.maximum(np.asarray(start.c), 1e-300)), *_LOG_C_BOUNDS),
@@ -629,7 +637,10 @@ def fit_kim(y, h, transition, mean_shift: bool = False, fixed_q: float | None = 
         return _failed("not_converged", f"Optimizer stopped: {res.message}", n_eval)
     params = unpack(res.x)
     message = "Estimated by maximum likelihood at the given transition matrix."
-    if free_q:
+    if free_q and floored and res.x[0] <= lo + 1e-9:
+        params = KimParams(q=float(q_min), c=params.c, m=params.m, transition=params.transition)
+        message += " q is at the stated floor (the likelihood's maximum lies below it)."
+    elif free_q:
         x_floor = res.x.copy()
         x_floor[0] = lo
         if (neg(x_floor) - float(res.fun)) * n_valid <= _FLAT_LOGLIK:

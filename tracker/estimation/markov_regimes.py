@@ -5,10 +5,13 @@ Model, for one factor's return series y_t (decimal per period)::
     y_t = mu_{S_t} + sigma_{S_t} * e_t,   e_t ~ N(0, 1)
     P(S_{t+1} = j | S_t = i) = transition[i, j]
 
-with K = 2 (default) or 3 regimes. Parameters are estimated with statsmodels
-``MarkovRegression(trend='c', switching_variance=True)`` on returns in
-*percent* (its optimizer and EM steps are tuned for values of order one),
-then converted back to decimal units.
+with K = 2 (default) or 3 regimes: the model of statsmodels
+``MarkovRegression(trend='c', switching_variance=True)``, on returns in *percent*
+(statsmodels' optimizer and EM steps are tuned for values of order one), converted back to
+decimal units. Two regimes are estimated by the batched EM of
+:mod:`tracker.estimation.regime_em` (default ``engine='em'``); three regimes, and
+``engine='statsmodels'``, by statsmodels' own fit from several starts
+(:func:`fit_best_of`).
 
 Conventions used throughout this module
 ---------------------------------------
@@ -720,8 +723,16 @@ class MarkovRegimeModel:
         parameters first, then the cold-fit starts. Default 1: a refit trusts the
         previous optimum's basin (searched around with ``search_reps``); use
         ``warm_start=False`` now and then for a full multi-start refit.
+    engine : {"em", "statsmodels"}
+        "em" (default, two regimes): :func:`tracker.estimation.regime_em.fit_em`, an
+        accelerated EM batched over the starts, each run to convergence; a warm refit
+        then uses the previous parameters *and* statsmodels' default start. With
+        "statsmodels" (and always for three regimes) every start goes through
+        :func:`fit_best_of` (random search, EM steps, BFGS). The two reach the same
+        optimum (tests/estimation/test_regime_em.py); EM is several times faster.
     search_reps, search_iter, em_iter, n_polish, maxiter : int
-        See :func:`fit_best_of`.
+        See :func:`fit_best_of`. For the EM engine ``maxiter`` caps its cycles (three E
+        steps each).
     seed : int
         Seed of the numpy Generator created at each ``fit`` (fits replay exactly).
     min_obs : int, optional
@@ -749,7 +760,11 @@ class MarkovRegimeModel:
                  maxiter: int = 200, seed: int = 0, min_obs: int | None = None,
                  min_regime_share: float = 0.01, min_regime_obs: float = 10.0,
                  min_variance_ratio: float = 1e-4, require_bic_gain: bool = True,
-                 vol_tie_ratio: float = 1.05, max_repeat_share: float = 0.05):
+                 vol_tie_ratio: float = 1.05, max_repeat_share: float = 0.05,
+                 engine: str = "em"):
+        if engine not in ("em", "statsmodels"):
+            raise ValueError("engine must be 'em' or 'statsmodels'")
+        self.engine = engine
         if k_regimes not in (2, 3):
             raise ValueError("k_regimes must be 2 or 3")
         if n_starts < 1 or (n_polish is not None and n_polish < 1):
@@ -792,7 +807,7 @@ class MarkovRegimeModel:
             starts = [regression_param_vector(
                 model, warm.means * PERCENT, warm.variances * PERCENT**2, warm.transition),
                 None]
-            wanted = self.warm_starts
+            wanted = self.warm_starts + (1 if self._uses_em() else 0)
         var, mean, sd = float(np.var(y_pct)), float(np.mean(y_pct)), float(np.std(y_pct))
         while len(starts) < wanted:
             variances = var * np.sort(np.exp(rng.uniform(math.log(0.2), math.log(3.0), k)))
@@ -802,6 +817,40 @@ class MarkovRegimeModel:
             np.fill_diagonal(trans, stay)
             starts.append(regression_param_vector(model, means, variances, trans))
         return starts[:wanted]
+
+    def _uses_em(self) -> bool:
+        return self.engine == "em" and self.k_regimes == 2
+
+    def _fit_em(self, model, y_pct, starts, floor_pct) -> BestOfFit:
+        """The EM engine on every start at once, reported like :func:`fit_best_of`."""
+        from tracker.estimation.regime_em import fit_em
+
+        moments = [regime_moments(model, model.start_params if st is None else st) for st in starts]
+        means = np.array([m[0] for m in moments])
+        variances = np.array([m[1] for m in moments])
+        trans = np.array([m[2] for m in moments])
+        with np.errstate(all="ignore"):
+            res = fit_em(y_pct, means, np.maximum(variances, floor_pct), trans,
+                         max_iter=3 * self.maxiter, variance_floor=floor_pct)
+        lls = tuple(float(v) if np.isfinite(v) else -np.inf for v in res.loglik)
+        good = [i for i in range(len(starts)) if res.converged[i] and not res.degenerate[i]]
+        n_degenerate = int(np.sum(res.degenerate))
+        if good:
+            i = max(good, key=lambda j: res.loglik[j])
+            vec = regression_param_vector(model, res.means[i], res.variances[i], res.transition[i])
+            return BestOfFit(vec, float(res.loglik[i]), True, lls, lls,
+                             f"EM converged in {int(res.n_iter[i])} E steps", True, n_degenerate)
+        alive = [i for i in range(len(starts)) if not res.degenerate[i] and np.isfinite(res.loglik[i])]
+        if not alive:
+            msg = "every start failed"
+            if n_degenerate:
+                msg += (f"; at {n_degenerate} of them a regime variance collapsed to its "
+                        "floor (the likelihood is unbounded there)")
+            return BestOfFit(None, np.nan, False, lls, (), msg, False, n_degenerate)
+        i = max(alive, key=lambda j: res.loglik[j])
+        vec = regression_param_vector(model, res.means[i], res.variances[i], res.transition[i])
+        return BestOfFit(vec, float(res.loglik[i]), False, lls, lls,
+                         f"EM did not converge in {3 * self.maxiter} E steps", True, n_degenerate)
 
     def fit(self, returns, previous: RegimeParams | None = None,
             warm_start: bool = True) -> RegimeFit:
@@ -847,10 +896,13 @@ class MarkovRegimeModel:
         def admissible(p):
             return bool(np.all(regime_moments(model, p)[1] >= floor_pct))
 
-        best = fit_best_of(model, starts, rng, search_reps=self.search_reps,
-                           search_iter=self.search_iter, em_iter=self.em_iter,
-                           n_polish=self.n_polish, maxiter=self.maxiter,
-                           admissible=admissible)
+        if self._uses_em():
+            best = self._fit_em(model, y_pct, starts, floor_pct)
+        else:
+            best = fit_best_of(model, starts, rng, search_reps=self.search_reps,
+                               search_iter=self.search_iter, em_iter=self.em_iter,
+                               n_polish=self.n_polish, maxiter=self.maxiter,
+                               admissible=admissible)
         unit_shift = t_len * math.log(PERCENT)  # log f_decimal = log f_percent + log(100)
         start_lls = tuple(ll + unit_shift if np.isfinite(ll) else ll for ll in best.start_llfs)
         common = dict(n_starts=len(starts), start_logliks=start_lls)

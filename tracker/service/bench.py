@@ -16,10 +16,10 @@ own), on a seeded synthetic store bulk-loaded by :mod:`tracker.service.bench_dat
   hours a refit would take (:mod:`tracker.service.bench_state`); then ``--sample-refit``
   factors are refit for real so a refit cost is measured at this very N and T.
 * **incremental update** for each of ``--new-days``: a drop file with that many new days
-  for every factor goes into the inbox; ingest (``process_inbox``), then the update
-  split in two, both timed: the factors whose plan is a plain advance
-  (``update(only=...)``), then whatever else is due (refits on schedule or after a DRIFT
-  warning), with the plan counts.
+  for every factor goes into the inbox; ingest (``process_inbox``) and ``update()``, both
+  timed, with the plan counts. When refits are due as well (on schedule, or after a DRIFT
+  warning), the update is split in two, both timed: the factors whose plan is a plain
+  advance (``update(only=...)``), then the rest.
 * **UI** on the largest cell (``--ui``): see :mod:`tracker.service.bench_ui`.
 
 Once per run, **ingest throughput**: one drop file of ``--ingest-rows`` factor-return
@@ -65,6 +65,8 @@ def add_bench_arguments(parser) -> None:
                         help="numbers of factors (default 10,100,500)")
     parser.add_argument("--days", default=",".join(map(str, DEFAULT_DAYS)), metavar="T[,T...]",
                         help="days of history (default 6500,15000)")
+    parser.add_argument("--cells", default=None, metavar="NxT[,NxT...]",
+                        help="explicit cells instead of the grid, e.g. 10x6500,500x2000")
     parser.add_argument("--refit-max", type=int, default=100, metavar="N",
                         help="cells with more factors skip the full refit and the naive loop and build "
                              "their state from borrowed parameters (default 100)")
@@ -95,6 +97,16 @@ def _ints(text) -> list[int]:
     return [int(v) for v in str(text).replace(" ", "").split(",") if v]
 
 
+def _cells(text) -> list[tuple[int, int]] | None:
+    if not text:
+        return None
+    out = []
+    for part in str(text).replace(" ", "").split(","):
+        n, _, t = part.lower().partition("x")
+        out.append((int(n), int(t)))
+    return out
+
+
 def _options(args) -> dict:
     get = (lambda k, d=None: args.get(k, d)) if isinstance(args, dict) else (lambda k, d=None: getattr(args, k, d))
     opts = {
@@ -104,10 +116,11 @@ def _options(args) -> dict:
         "new_days": _ints(get("new_days", "1,5")), "ingest_rows": int(get("ingest_rows", 1_000_000)),
         "ui": bool(get("ui", True)), "workers": get("workers"), "json": get("json"),
         "workdir": get("workdir"), "keep": bool(get("keep", False)), "seed": int(get("seed", 20261202)),
-        "in_process": bool(get("in_process", False)),
+        "in_process": bool(get("in_process", False)), "cells": _cells(get("cells")),
     }
-    if not opts["factors"] or not opts["days"] or min(opts["factors"]) < 1 or min(opts["days"]) < 300:
-        raise ValueError("need at least one factor count >= 1 and one day count >= 300")
+    grid = opts["cells"] or [(n, t) for n in opts["factors"] for t in opts["days"]]
+    if not grid or min(n for n, _ in grid) < 1 or min(t for _, t in grid) < 300:
+        raise ValueError("need at least one cell with >= 1 factor and >= 300 days")
     if not opts["new_days"] or min(opts["new_days"]) < 1:
         raise ValueError("--new-days must list positive day counts")
     return opts
@@ -124,7 +137,7 @@ def bench_command(args, echo=print) -> int:
     root = Path(opts["workdir"] or tempfile.mkdtemp(prefix="tracker-bench-"))
     root.mkdir(parents=True, exist_ok=True)
     started = time.perf_counter()
-    cells_spec = [(n, t) for t in sorted(opts["days"]) for n in sorted(opts["factors"])]
+    cells_spec = opts["cells"] or [(n, t) for t in sorted(opts["days"]) for n in sorted(opts["factors"])]
     largest = max(cells_spec, key=lambda c: (c[0], c[1]))
     result = {"version": 1, "created": datetime.now().isoformat(timespec="seconds"),
               "machine": {"cpus": os.cpu_count(), "python": platform.python_version(),

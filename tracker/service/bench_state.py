@@ -154,12 +154,20 @@ def build_borrowed_state(store: Store, config: Config, panel: SyntheticPanel, *,
 
 def truth_market_params(panel: SyntheticPanel) -> MarketRegimeParams:
     """Market-regime parameters from the synthetic truth: per-regime sample means and
-    covariances on the true regime labels, the empirical transition matrix of the chain."""
+    covariances on the true regime labels (shrunk toward the diagonal by N / rows), the
+    empirical transition matrix of the chain."""
     t = panel.n_days
     x, s = panel.returns[:t], panel.regimes[:t]
     k = 2
     means = np.array([x[s == j].mean(axis=0) for j in range(k)])
-    covars = np.array([np.cov(x[s == j], rowvar=False) for j in range(k)])
+    covars = []
+    for j in range(k):
+        c = np.cov(x[s == j], rowvar=False)
+        # with fewer rows than factors a sample covariance is singular: shrink toward its
+        # diagonal (weight N / rows, capped at 1) so the filter has a density
+        w = min(1.0, x.shape[1] / max(int((s == j).sum()), 1))
+        covars.append((1 - w) * c + w * np.diag(np.diag(c)))
+    covars = np.array(covars)
     counts = np.zeros((k, k))
     np.add.at(counts, (s[:-1], s[1:]), 1)
     trans = counts / counts.sum(axis=1, keepdims=True)

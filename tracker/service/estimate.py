@@ -317,8 +317,10 @@ def _update_locked(store, config, refit, only, progress, executor, observer=None
         return RunSummary(kinds={}, timings=timings)
     if progress:
         progress(total, total, "writing results")
-    rows = _write(store, config, inp, plans, outputs, market, started)
+    detail: dict[str, float] = {}
+    rows = _write(store, config, inp, plans, outputs, market, started, detail)
     lap("write")
+    timings.update(detail)
     kinds = {p.factor_id: p.kind for p in plans}
     if market is not None and market.emitted:
         kinds[market_mod.MARKET] = market.kind
@@ -357,8 +359,10 @@ def _state_json(inp: Inputs, plan: Plan, out: FactorOutput, prep) -> str:
     return dumps(states)
 
 
-def _write(store, config, inp, plans, outputs, market, started) -> int:
+def _write(store, config, inp, plans, outputs, market, started, timings: dict | None = None) -> int:
+    t0 = time.perf_counter()
     warn_frame, prepared = warning_frames(config, inp, plans, outputs)
+    t1 = time.perf_counter()
     state_rows, run_rows = [], []
     with store.transaction() as con:
         stamps = {(r[0], r[1]): r[3] for r in con.execute(sql("estimation.state_stamps")).fetchall()}
@@ -410,6 +414,10 @@ def _write(store, config, inp, plans, outputs, market, started) -> int:
         if market is not None:
             market_mod.write_market(con, market, inp, started)
         con.execute(sql("estimation.bump_version"))
+        t2 = time.perf_counter()
+    if timings is not None:   # commit and close include DuckDB's checkpoint of the store
+        timings.update({"write_warnings": t1 - t0, "write_statements": t2 - t1,
+                        "write_commit_close": time.perf_counter() - t2})
     return premium.written
 
 

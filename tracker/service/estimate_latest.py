@@ -177,7 +177,8 @@ def warning_frames(config, inp, plans, outputs):
         first = int(np.argmax(m))
         n_prior = 0 if plan.kind != "advance" else inp.rows[fid].n_before
         found = (list(out.dated_warnings) if out.dated_warnings is not None and n_prior == 0
-                 else per_date_warnings(out, fr, first, n_prior, th))
+                 # the last date gets the latest-date rules instead, so it is skipped here
+                 else per_date_warnings(out, fr, first, n_prior, th, end_index=out.dates.size - 1))
         status = {**_fit_statuses(inp, fid), **out.status}
         msg = {**_fit_messages(inp, fid), **out.message}
         test = tests[fid]

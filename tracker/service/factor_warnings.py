@@ -65,13 +65,14 @@ def run_factor_with_warnings(args: tuple) -> FactorOutput:
 
 
 def per_date_warnings(out: FactorOutput, frequency: str, first_index: int, n_prior: int,
-                      th: wr.WarningThresholds) -> list[dict]:
-    """Cheap rules for rows ``first_index..`` of ``out`` (``n_prior`` rows came before them)."""
+                      th: wr.WarningThresholds, end_index: int | None = None) -> list[dict]:
+    """Cheap rules for rows ``first_index..end_index-1`` of ``out`` (default: to the end;
+    ``n_prior`` rows came before them)."""
     ppy = PERIODS_PER_YEAR[frequency]
     rows: list[dict] = []
     sd = np.sqrt(out.premium_var)
     sharpe = out.premium / out.vol_forecast * math.sqrt(ppy)
-    for i in range(first_index, out.dates.size):
+    for i in range(first_index, out.dates.size if end_index is None else end_index):
         if not math.isfinite(out.returns[i]):
             continue
         date = out.dates[i]
