@@ -222,3 +222,23 @@ def test_params_json_roundtrip_diag_is_compact():
     q = MarketRegimeParams.from_dict(d)
     np.testing.assert_array_equal(q.covariance_matrices, p.covariance_matrices)
     assert q.covariance_matrices.shape == (2, 3, 3)
+
+
+def test_warm_refit_reaches_the_cold_optimum():
+    # A scheduled refit starts from the previous optimum (plus the default start): on the
+    # same data it must find the cold multi-start fit's number of states and likelihood.
+    rng = np.random.default_rng(31)
+    t_len = 3000
+    s = np.zeros(t_len, int)
+    for t in range(1, t_len):
+        s[t] = s[t - 1] if rng.random() < 0.99 else 1 - s[t - 1]
+    vol = np.where(s == 0, 0.006, 0.018)[:, None]
+    x = vol * rng.standard_normal((t_len, 3)) + np.where(s == 0, 4e-4, -6e-4)[:, None]
+    model = MarketRegimeModel(states=(2, 3), n_seeds=3, seed=5)
+    cold = model.fit(x)
+    assert cold.ok
+    warm = model.fit(x, previous=cold.params, warm_start=True)
+    assert warm.ok and warm.n_states == cold.n_states
+    # hmmlearn's EM stops at tol = 1e-2 in log-likelihood; allow a few times that
+    assert warm.loglik >= cold.loglik - 0.05
+    np.testing.assert_allclose(warm.params.transition, cold.params.transition, atol=2e-3)

@@ -39,3 +39,27 @@ def test_drift_floor_matches_its_definition():
     q = drift_floor_q(y, "daily", 0.05)
     assert np.isclose(q, (0.05 * np.std(y, ddof=1) / 252) ** 2, rtol=1e-12)
     assert drift_floor_q(y, "daily", 0.0) == 0.0
+
+
+def _regime_series(seed: int, n: int = 3000) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    s = np.zeros(n, int)
+    for t in range(1, n):
+        s[t] = s[t - 1] if rng.random() < 0.99 else 1 - s[t - 1]
+    return np.where(s == 0, 4e-4 + 0.006 * rng.standard_normal(n), -2e-4 + 0.016 * rng.standard_normal(n))
+
+
+def test_regime_premium_shares_the_local_level_q_by_default():
+    y = _regime_series(21)
+    dates = np.datetime64("2001-01-01") + np.arange(len(y))
+    out = run_factor(FactorTask("X", "daily", dates, y, SETTINGS, refit=True))
+    assert out.params["regime_premium"]["q"] == out.params["premium"]["q"]
+    free = {**SETTINGS, "regime_premium_q": "free"}
+    out_free = run_factor(FactorTask("X", "daily", dates, y, free, refit=True))
+    floor = drift_floor_q(y, "daily", SETTINGS["premium_drift_floor"])
+    # its own q, never below the stated floor (a bound of the search)
+    assert out_free.params["regime_premium"]["q"] >= floor * (1 - 1e-9)
+    ll = {f.model: f.loglik for f in out.fits}
+    ll_free = {f.model: f.loglik for f in out_free.fits}
+    # the restricted (shared-q) maximum cannot beat the free one
+    assert ll["regime_premium"] <= ll_free["regime_premium"] + 1e-6

@@ -443,7 +443,24 @@ class MarketRegimeModel:
         return hmm
 
     # -- one candidate ---------------------------------------------------------
-    def _fit_candidate(self, z, k, scale):
+    def _warm_hmm(self, k, previous: MarketRegimeParams, scale, seed):
+        """An HMM started at a previous fit's parameters (standardised units)."""
+        n = scale.size
+        hmm = GaussianHMM(n_components=k, covariance_type=self.covariance_type,
+                          n_iter=self.n_iter, tol=self.tol, random_state=seed,
+                          min_covar=self.min_covar, covars_prior=self.covars_prior,
+                          init_params="", params="stmc")
+        start = np.clip(np.asarray(previous.startprob, float), 1e-6, None)
+        hmm.startprob_ = start / start.sum()
+        trans = np.clip(np.asarray(previous.transition, float), 1e-6, None)
+        hmm.transmat_ = trans / trans.sum(axis=1, keepdims=True)
+        hmm.means_ = np.asarray(previous.means, float) / scale[None, :]
+        full = previous.covariance_matrices / np.outer(scale, scale)[None, :, :]
+        full = full + self.min_covar * np.eye(n)[None]
+        hmm.covars_ = full if self.covariance_type == "full" else np.diagonal(full, axis1=1, axis2=2)
+        return hmm
+
+    def _fit_candidate(self, z, k, scale, warm: MarketRegimeParams | None = None):
         t_len, n = z.shape
         n_params = n_free_parameters(k, n, self.covariance_type)
         if t_len * n < self.min_obs_per_param * n_params:
@@ -458,11 +475,17 @@ class MarketRegimeModel:
         level = hmm_log.level
         hmm_log.setLevel(logging.ERROR)  # its "not converging" notes become our statuses
         try:
-            for i in range(self.n_seeds):
-                seed = self.seed + i
+            # a warm refit: the previous optimum (when it had k states) and the default
+            # quantile start; a cold fit: the default start and n_seeds - 1 random ones
+            runs = ([-1, 0] if warm.n_states == k else [0]) if warm is not None else range(self.n_seeds)
+            for i in runs:
+                seed = self.seed + max(i, 0)
                 try:
-                    groups = self._initial_groups(z, k, rng, first=(i == 0))
-                    hmm = self._make_hmm(k, z, groups, seed)
+                    if i < 0:
+                        hmm = self._warm_hmm(k, warm, scale, seed)
+                    else:
+                        groups = self._initial_groups(z, k, rng, first=(i == 0))
+                        hmm = self._make_hmm(k, z, groups, seed)
                     with warnings.catch_warnings():
                         warnings.simplefilter("ignore")
                         hmm.fit(z)
@@ -522,7 +545,8 @@ class MarketRegimeModel:
             MarketRegimeParams.nan(k, n_factors, self.covariance_type, columns),
             state_share=np.full(k, np.nan), **extra)
 
-    def fit(self, x, previous: MarketRegimeParams | None = None, columns=None) -> MarketRegimeFit:
+    def fit(self, x, previous: MarketRegimeParams | None = None, columns=None,
+            warm_start: bool = False) -> MarketRegimeFit:
         """Fit every candidate number of states and keep the BIC choice.
 
         Parameters
@@ -531,6 +555,10 @@ class MarketRegimeModel:
             Decimal factor returns, finite. A pandas DataFrame's column names are kept.
         previous : MarketRegimeParams, optional
             Last fit: keeps state labels stable when the shape is unchanged.
+        warm_start : bool
+            With ``previous`` of the same factors: a scheduled refit. Each number of
+            states is fitted from the default start only, plus the previous optimum for
+            its own number of states (instead of ``n_seeds`` starts each).
         columns : sequence of str, optional
             Factor names (overrides a DataFrame's).
         """
@@ -556,8 +584,11 @@ class MarketRegimeModel:
         z = x / scale
 
         cands, models = [], {}
+        warm = previous if (warm_start and previous is not None and previous.n_factors == n
+                            and np.all(np.isfinite(previous.means))
+                            and np.all(np.isfinite(previous.covars))) else None
         for k in self.states:
-            cand, hmm = self._fit_candidate(z, k, scale)
+            cand, hmm = self._fit_candidate(z, k, scale, warm)
             cands.append(cand)
             if hmm is not None:
                 models[k] = hmm

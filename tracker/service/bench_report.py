@@ -153,7 +153,12 @@ def targets(result: dict) -> list[dict]:
             nv, fr = c["naive"], c["full_refit"]
             r = nv["per_factor_s"] / fr["per_factor_s"]
             worse = nv["loglik_regimes"]["n_worse_than_1e-6"] + nv["loglik_premium_same_model"]["n_worse_than_1e-6"]
-            parts.append(f"{c['factors']}x{c['days']}: naive/ours {r:.2f}x, {worse} fits worse than naive by >1e-6")
+            text = f"{c['factors']}x{c['days']}: naive/ours {r:.2f}x cold"
+            if c.get("warm_refit"):
+                # a scheduled refit starts from the parameters in force: reported beside the
+                # cold first fit, the verdict stays on the cold one
+                text += f", {nv['per_factor_s'] / c['warm_refit']['per_factor_s']:.2f}x scheduled (warm)"
+            parts.append(f"{text}, {worse} fits worse than naive by >1e-6")
             verdicts.append(r >= REFIT_SPEEDUP and worse == 0)
     out.append({"target": "full refit at least 5x faster than the naive statsmodels loop, log-likelihoods no worse",
                 "measured": "; ".join(parts) or "no refit cell", "met": all(verdicts) if verdicts else None})

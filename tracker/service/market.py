@@ -132,7 +132,10 @@ def run_market(inp, config, *, refit_all: bool, rederive: bool) -> MarketOutput 
             states=tuple(range(m.market_states_min, m.market_states_max + 1)) if m.market_states_min >= 2 else (2,),
             n_seeds=m.market_seeds, seed=m.seed,
         )
-        fit = model.fit(x.to_numpy(), previous=prev_params if same_columns else None, columns=tuple(columns))
+        # a refit of a store that has a market fit over the same factors starts from it
+        # (see MarketRegimeModel.fit); a first fit, or new factors, is cold
+        fit = model.fit(x.to_numpy(), previous=prev_params if same_columns else None, columns=tuple(columns),
+                        warm_start=same_columns and not getattr(inp, "cold_market", False))
         if fit.status != "ok" or fit.filtered is None:
             return MarketOutput("fit", tuple(columns), fit, {}, {}, dates[:0], np.empty((0, 0)),
                                 np.empty((0, 0)), dates[-1], vintage, None)
