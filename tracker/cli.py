@@ -59,6 +59,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("factors", nargs="*", metavar="FACTOR", help="factor ids (default: all)")
     p.add_argument("--workers", type=int, default=None,
                    help="local worker processes (default: [service] workers, or the Dask cluster when configured)")
+    p.add_argument("--cold", action="store_true",
+                   help="start every fit afresh (multi-start) instead of from the parameters in force; "
+                        "the market model re-selects its number of states")
     p.set_defaults(handler=_cmd_refit)
 
     p = sub.add_parser("update", help="bring estimates up to date with the stored data (no refit unless due)")
@@ -204,7 +207,8 @@ def _cmd_refit(args) -> int:
     if args.workers is not None and args.workers < 1:
         raise UsageError("--workers must be at least 1")
     summary = update(store, config, refit=set(args.factors), progress=_progress_printer(),
-                     executor=LocalProcessExecutor(args.workers) if args.workers else executor_for(config))
+                     executor=LocalProcessExecutor(args.workers) if args.workers else executor_for(config),
+                     cold=bool(getattr(args, "cold", False)))
     print(summary.describe())
     return 0 if not summary.skipped else 1
 

@@ -239,6 +239,9 @@ def test_warm_refit_reaches_the_cold_optimum():
     assert cold.ok
     warm = model.fit(x, previous=cold.params, warm_start=True)
     assert warm.ok and warm.n_states == cold.n_states
+    # the number of states is kept, not re-selected, and the fit says so
+    assert len(warm.candidates) == 1
+    assert any("kept" in w for w in warm.warnings)
     # hmmlearn's EM stops at tol = 1e-2 in log-likelihood; allow a few times that
     assert warm.loglik >= cold.loglik - 0.05
     np.testing.assert_allclose(warm.params.transition, cold.params.transition, atol=2e-3)

@@ -183,3 +183,18 @@ def test_a_revision_rederives_from_the_revised_date(estimated_demo_store):
     others_b = before[before.factor_id != "VALUE"].reset_index(drop=True)
     others_a = after[after.factor_id != "VALUE"].reset_index(drop=True)
     pd.testing.assert_frame_equal(others_b, others_a)
+
+
+def test_warm_and_cold_refits_reach_the_same_optimum(estimated_demo_store):
+    # A refit starts from the parameters in force; `--cold` from default and random
+    # starts. On the same data both must end at the same regime and premium optima.
+    store, config = estimated_demo_store
+    sql_fit = ("SELECT model, loglik FROM model_fits WHERE subject_id = 'MOM' AND is_current "
+               "AND status = 'ok' ORDER BY model")
+    update(store, config, refit={"MOM"}, only={"MOM"})
+    warm = q(store, sql_fit).set_index("model")["loglik"]
+    update(store, config, refit={"MOM"}, only={"MOM"}, cold=True)
+    cold = q(store, sql_fit).set_index("model")["loglik"]
+    for model in ("premium", "regimes", "regime_premium"):
+        assert model in warm.index and model in cold.index
+        assert cold[model] == pytest.approx(warm[model], rel=1e-6, abs=1e-3)

@@ -556,9 +556,10 @@ class MarketRegimeModel:
         previous : MarketRegimeParams, optional
             Last fit: keeps state labels stable when the shape is unchanged.
         warm_start : bool
-            With ``previous`` of the same factors: a scheduled refit. Each number of
-            states is fitted from the default start only, plus the previous optimum for
-            its own number of states (instead of ``n_seeds`` starts each).
+            With ``previous`` of the same factors: a refit that keeps the number of
+            states and starts from the previous optimum and from the default start
+            (instead of every candidate number of states from ``n_seeds`` starts each).
+            A cold fit re-selects the number of states by BIC.
         columns : sequence of str, optional
             Factor names (overrides a DataFrame's).
         """
@@ -587,7 +588,8 @@ class MarketRegimeModel:
         warm = previous if (warm_start and previous is not None and previous.n_factors == n
                             and np.all(np.isfinite(previous.means))
                             and np.all(np.isfinite(previous.covars))) else None
-        for k in self.states:
+        states = (warm.n_states,) if warm is not None and warm.n_states in self.states else self.states
+        for k in states:
             cand, hmm = self._fit_candidate(z, k, scale, warm)
             cands.append(cand)
             if hmm is not None:
@@ -604,6 +606,9 @@ class MarketRegimeModel:
         chosen = min(usable, key=lambda c: c.bic)
         notes = [f"{c.n_states} states not usable ({c.status}): BIC chose among the rest"
                  for c in cands if c.status != "ok"]
+        if len(states) == 1 and len(self.states) > 1:
+            notes.append(f"warm refit: kept {states[0]} states from the previous fit (a cold "
+                         "refit re-selects the number of states by BIC)")
         params, order, match = self._ordered_params(models[chosen.n_states], scale, previous,
                                                     columns)
         filt = market_filter(x, params)

@@ -239,6 +239,7 @@ def update(
     progress: Progress | None = None,
     executor: Executor | None = None,
     observer: Callable[[FactorOutput], None] | None = None,
+    cold: bool = False,
 ) -> RunSummary:
     """Bring estimates up to date with the stored data.
 
@@ -253,11 +254,15 @@ def update(
         Where the fits run (default: local processes for refits, this process otherwise).
     observer : callable(FactorOutput), optional
         Sees every factor's output before it is written (the benchmark reads its timings).
+    cold : bool
+        Refits start afresh (multi-start, default starting points) instead of from the
+        parameters in force, and a market refit re-selects its number of states. A
+        first fit is always cold.
     """
     with estimation_lock(store) as acquired:
         if not acquired:
             return RunSummary(skipped="another process is estimating; its results will appear when it finishes")
-        summary = _update_locked(store, config, refit, only, progress, executor, observer)
+        summary = _update_locked(store, config, refit, only, progress, executor, observer, cold)
         from tracker.service.assets import update_exposures
 
         t0 = time.perf_counter()
@@ -269,7 +274,8 @@ def update(
         return summary
 
 
-def _update_locked(store, config, refit, only, progress, executor, observer=None) -> RunSummary:
+def _update_locked(store, config, refit, only, progress, executor, observer=None,
+                   cold: bool = False) -> RunSummary:
     started = datetime.now()
     clock = [time.perf_counter()]
     timings: dict[str, float] = {}
@@ -283,7 +289,8 @@ def _update_locked(store, config, refit, only, progress, executor, observer=None
     lap("read")
     if not plans and inp.market is None:
         return RunSummary(kinds={}, timings=timings)
-    settings = _settings(config)
+    settings = {**_settings(config), "cold": bool(cold)}
+    inp.cold_market = bool(cold)
     tasks = [_task(inp, p, inp.freq[p.factor_id], settings) for p in plans]
     heavy = [t for t in tasks if t.refit]
     light = [t for t in tasks if not t.refit]

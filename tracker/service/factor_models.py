@@ -231,8 +231,9 @@ def run_factor(task: FactorTask) -> FactorOutput:
     # Parameters are only ever estimated on a refit task (the whole history). An advance
     # never fits: a model without usable parameters stays without numbers until the
     # service schedules a refit (estimate._plan does when enough data has arrived).
+    cold = bool(s.get("cold", False))     # a cold refit ignores the parameters in force as starts
     if task.refit:
-        fit = fit_local_level(y, h, start=prev_ll, min_obs=s["min_obs"])
+        fit = fit_local_level(y, h, start=None if cold else prev_ll, min_obs=s["min_obs"])
         q_floor = drift_floor_q(y, task.frequency, s.get("premium_drift_floor", 0.0))
         fitted, floored = _apply_floor(fit.params.to_dict() if fit.status == "ok" else {}, q_floor)
         msg = fit.message
@@ -267,7 +268,7 @@ def run_factor(task: FactorTask) -> FactorOutput:
             k_regimes=s["regimes"], n_starts=s["regime_starts"], seed=s["seed"],
         )
         finite = np.isfinite(y)
-        rfit = model.fit(y[finite], previous=prev_rp)
+        rfit = model.fit(y[finite], previous=prev_rp, warm_start=not cold)   # labels kept either way
         fits.append(FitRecord(MODEL_REGIMES, rfit.status, rfit.message,
                               rfit.params.to_dict() if rfit.status == "ok" else {},
                               _finite_or_nan(rfit.loglik), int(finite.sum()), bool(rfit.converged)))
@@ -292,7 +293,7 @@ def run_factor(task: FactorTask) -> FactorOutput:
     # 4. regime-aware premium (Kim filter), driven by the regime transition matrix
     prev_kp = KimParams.from_dict(params[MODEL_REGIME_PREMIUM]) if params.get(MODEL_REGIME_PREMIUM) else None
     if rp is not None and task.refit:
-        start = prev_kp if prev_kp is not None else _kim_cold_start(y, h, ll_params, rp, regime_filtered)
+        start = prev_kp if (prev_kp is not None and not cold) else _kim_cold_start(y, h, ll_params, rp, regime_filtered)
         q_floor = drift_floor_q(y, task.frequency, s.get("premium_drift_floor", 0.0))
         # 'shared' (default): q is the plain local level's (after its floor), held fixed,
         # so the search is over the regime noise scales c only: the drift likelihood is
