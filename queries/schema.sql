@@ -19,7 +19,7 @@ CREATE TABLE drop_files(drop_id BIGINT PRIMARY KEY, sha256 VARCHAR NOT NULL, fil
 
 CREATE TABLE estimation_runs(run_id BIGINT PRIMARY KEY, kind VARCHAR NOT NULL, reason VARCHAR DEFAULT('') NOT NULL, subjects VARCHAR DEFAULT('') NOT NULL, from_date DATE, through_date DATE, started_at TIMESTAMP NOT NULL, finished_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, status VARCHAR DEFAULT('ok') NOT NULL, message VARCHAR DEFAULT('') NOT NULL);
 
-CREATE TABLE exposure_estimates(asset_id VARCHAR, factor_id VARCHAR, date DATE, vintage INTEGER, beta DOUBLE, beta_se DOUBLE, window_rows INTEGER NOT NULL, computed_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, superseded_at TIMESTAMP, PRIMARY KEY(asset_id, factor_id, date, vintage));
+CREATE TABLE exposure_estimates(asset_id VARCHAR NOT NULL, factor_id VARCHAR NOT NULL, date DATE NOT NULL, vintage INTEGER NOT NULL, beta DOUBLE, beta_se DOUBLE, window_rows INTEGER NOT NULL, computed_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, superseded_at TIMESTAMP);
 
 CREATE TABLE factor_returns(factor_id VARCHAR, date DATE, ret DOUBLE NOT NULL, drop_id BIGINT, PRIMARY KEY(factor_id, date));
 
@@ -29,9 +29,9 @@ CREATE TABLE filter_states(subject_id VARCHAR, model VARCHAR, fit_id BIGINT NOT 
 
 CREATE TABLE model_fits(fit_id BIGINT PRIMARY KEY, subject_id VARCHAR NOT NULL, model VARCHAR NOT NULL, status VARCHAR NOT NULL, message VARCHAR DEFAULT('') NOT NULL, params_json VARCHAR DEFAULT('{}') NOT NULL, loglik DOUBLE, n_obs INTEGER DEFAULT(0) NOT NULL, converged BOOLEAN DEFAULT(false) NOT NULL, data_from DATE, data_through DATE, reason VARCHAR DEFAULT('') NOT NULL, fitted_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, is_current BOOLEAN DEFAULT(true) NOT NULL);
 
-CREATE TABLE premium_estimates(factor_id VARCHAR, date DATE, vintage INTEGER, fit_id BIGINT, premium DOUBLE, premium_sd DOUBLE, premium_ann DOUBLE, premium_ann_sd DOUBLE, regime_premium DOUBLE, regime_premium_sd DOUBLE, vol_forecast DOUBLE, sharpe_ann DOUBLE, snr DOUBLE, std_error DOUBLE, loglik_t DOUBLE, computed_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, superseded_at TIMESTAMP, PRIMARY KEY(factor_id, date, vintage));
+CREATE TABLE premium_estimates(factor_id VARCHAR NOT NULL, date DATE NOT NULL, vintage INTEGER NOT NULL, fit_id BIGINT, premium DOUBLE, premium_sd DOUBLE, premium_ann DOUBLE, premium_ann_sd DOUBLE, regime_premium DOUBLE, regime_premium_sd DOUBLE, vol_forecast DOUBLE, sharpe_ann DOUBLE, snr DOUBLE, std_error DOUBLE, loglik_t DOUBLE, computed_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, superseded_at TIMESTAMP);
 
-CREATE TABLE regime_estimates(subject_id VARCHAR, date DATE, vintage INTEGER, fit_id BIGINT, n_regimes INTEGER NOT NULL, regime INTEGER, probability DOUBLE, filtered DOUBLE[], predicted DOUBLE[], computed_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, superseded_at TIMESTAMP, PRIMARY KEY(subject_id, date, vintage));
+CREATE TABLE regime_estimates(subject_id VARCHAR NOT NULL, date DATE NOT NULL, vintage INTEGER NOT NULL, fit_id BIGINT, n_regimes INTEGER NOT NULL, regime INTEGER, probability DOUBLE, filtered DOUBLE[], predicted DOUBLE[], computed_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, superseded_at TIMESTAMP);
 
 CREATE TABLE reviews(review_id BIGINT PRIMARY KEY, reviewer VARCHAR NOT NULL, reviewed_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, snapshot_json VARCHAR NOT NULL);
 
@@ -47,4 +47,4 @@ CREATE TABLE truth_premia(factor_id VARCHAR, date DATE, premium DOUBLE NOT NULL,
 
 CREATE TABLE truth_regimes(date DATE PRIMARY KEY, regime INTEGER NOT NULL);
 
-CREATE TABLE warnings(subject_id VARCHAR, date DATE, vintage INTEGER, code VARCHAR, severity VARCHAR NOT NULL, message VARCHAR NOT NULL, detail VARCHAR DEFAULT('') NOT NULL, "value" DOUBLE, threshold DOUBLE, "source" VARCHAR NOT NULL, computed_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, superseded_at TIMESTAMP, PRIMARY KEY(subject_id, date, vintage, code));
+CREATE TABLE warnings(subject_id VARCHAR NOT NULL, date DATE NOT NULL, vintage INTEGER NOT NULL, code VARCHAR NOT NULL, severity VARCHAR NOT NULL, message VARCHAR NOT NULL, detail VARCHAR DEFAULT('') NOT NULL, "value" DOUBLE, threshold DOUBLE, "source" VARCHAR NOT NULL, computed_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, superseded_at TIMESTAMP);

@@ -48,6 +48,9 @@ class ModelSettings:
     regime_premium_q: str = "shared"   # 'shared': the regime-aware premium uses the plain local
                                        # level's q (two-step, like its transition matrix);
                                        # 'free': its own maximum-likelihood q
+    market_factors: str = "auto"    # 'auto', or the factor ids of the market regime, comma-separated
+    market_factors_max: int = 12    # 'auto' keeps at most this many long-history factors (the most
+                                    # volatile; the set stays fixed once fitted)
     market_states_min: int = 2
     market_states_max: int = 4
     market_seeds: int = 3

@@ -146,6 +146,11 @@ FROM factor_returns r JOIN bounds b USING (factor_id)
 WHERE r.date > least(b.through_date, b.fit_through)
 GROUP BY r.factor_id;
 
+-- name: factor_variances
+-- Sample variance of each named factor's stored returns (choosing the market regime's factors).
+SELECT factor_id, var_samp(ret) FROM factor_returns
+WHERE factor_id IN (SELECT unnest(CAST(? AS VARCHAR[]))) GROUP BY factor_id;
+
 -- name: factor_returns_of
 SELECT factor_id, date, ret FROM factor_returns
 WHERE factor_id IN (SELECT unnest(CAST(? AS VARCHAR[]))) ORDER BY factor_id, date;

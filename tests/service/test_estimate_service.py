@@ -109,6 +109,20 @@ def _append_day(store, day: pd.Timestamp, bump: dict | None = None) -> None:
         con.execute("INSERT INTO factor_returns (factor_id, date, ret) SELECT factor_id, date, ret FROM incoming_frame")
 
 
+KEYS = {  # the estimate tables carry no index (migration 004): the service keeps them unique
+    "premium_estimates": "factor_id, date, vintage",
+    "regime_estimates": "subject_id, date, vintage",
+    "warnings": "subject_id, date, vintage, code",
+    "exposure_estimates": "asset_id, factor_id, date, vintage",
+}
+
+
+def _assert_unique_keys(store) -> None:
+    for table, key in KEYS.items():
+        dup = q(store, f"SELECT {key}, count(*) AS n FROM {table} GROUP BY ALL HAVING n > 1 LIMIT 3")
+        assert dup.empty, f"{table} repeats a key: {dup.to_dict('records')}"
+
+
 def _snapshot(store) -> pd.DataFrame:
     return q(store, """SELECT * EXCLUDE (computed_at) FROM premium_estimates ORDER BY factor_id, date, vintage""")
 
@@ -130,6 +144,7 @@ def test_appending_rows_never_changes_a_stored_estimate(estimated_demo_store):
     regimes_after = q(store, "SELECT * EXCLUDE (computed_at) FROM regime_estimates ORDER BY ALL")
     assert len(regimes_after) == len(regimes_before) + 11  # ten factors and the market
     assert update(store, config).kinds == {}  # nothing new: nothing to do
+    _assert_unique_keys(store)
 
 
 def test_advancing_equals_filtering_the_whole_history(estimated_demo_store):
@@ -183,6 +198,7 @@ def test_a_revision_rederives_from_the_revised_date(estimated_demo_store):
     others_b = before[before.factor_id != "VALUE"].reset_index(drop=True)
     others_a = after[after.factor_id != "VALUE"].reset_index(drop=True)
     pd.testing.assert_frame_equal(others_b, others_a)
+    _assert_unique_keys(store)
 
 
 def test_warm_and_cold_refits_reach_the_same_optimum(estimated_demo_store):

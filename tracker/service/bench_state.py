@@ -152,12 +152,23 @@ def build_borrowed_state(store: Store, config: Config, panel: SyntheticPanel, *,
     }
 
 
-def truth_market_params(panel: SyntheticPanel) -> MarketRegimeParams:
+def truth_market_columns(panel: SyntheticPanel, config: Config) -> list[int]:
+    """Column indices of the factors the service's market regime would use."""
+    t = panel.n_days
+    ids = list(panel.factor_ids)
+    var = dict(zip(ids, np.var(panel.returns[:t], axis=0, ddof=1)))
+    m = config.models
+    chosen = market_mod.choose_columns(ids, m.market_factors, m.market_factors_max, None, lambda: var)
+    return [ids.index(f) for f in chosen]
+
+
+def truth_market_params(panel: SyntheticPanel, columns: list[int] | None = None) -> MarketRegimeParams:
     """Market-regime parameters from the synthetic truth: per-regime sample means and
     covariances on the true regime labels (shrunk toward the diagonal by N / rows), the
-    empirical transition matrix of the chain."""
+    empirical transition matrix of the chain; over ``columns`` (default all)."""
     t = panel.n_days
-    x, s = panel.returns[:t], panel.regimes[:t]
+    cols = list(range(panel.n_factors)) if columns is None else list(columns)
+    x, s = panel.returns[:t][:, cols], panel.regimes[:t]
     k = 2
     means = np.array([x[s == j].mean(axis=0) for j in range(k)])
     covars = []
@@ -172,20 +183,21 @@ def truth_market_params(panel: SyntheticPanel) -> MarketRegimeParams:
     np.add.at(counts, (s[:-1], s[1:]), 1)
     trans = counts / counts.sum(axis=1, keepdims=True)
     start = np.bincount(s, minlength=k) / s.size
-    return MarketRegimeParams(k, means, covars, "full", trans, start, tuple(panel.factor_ids))
+    return MarketRegimeParams(k, means, covars, "full", trans, start, tuple(panel.factor_ids[i] for i in cols))
 
 
 def write_truth_market(store: Store, config: Config, panel: SyntheticPanel) -> dict:
     """Store a market regime set from the synthetic truth (not fitted), filtered over the
     history, through the service's own market writer; later updates advance it."""
-    params = truth_market_params(panel)
+    cols = truth_market_columns(panel, config)
+    params = truth_market_params(panel, cols)
     t = panel.n_days
-    filt = market_filter(panel.returns[:t], params)
+    filt = market_filter(panel.returns[:t][:, cols], params)
     fit = MarketRegimeFit("ok", "bench: market regime set from the synthetic truth; not fitted",
-                          params.n_states, t, panel.n_factors, params, loglik=filt.loglik,
+                          params.n_states, t, len(cols), params, loglik=filt.loglik,
                           converged=True, filtered=filt)
     dates = panel.dates[:t]
-    out = market_mod.MarketOutput("fit", tuple(panel.factor_ids), fit, params.to_dict(), filt.state.to_dict(),
+    out = market_mod.MarketOutput("fit", tuple(params.columns), fit, params.to_dict(), filt.state.to_dict(),
                                   dates, filt.filtered, filt.predicted, dates[-1], 1, None)
     inp, _ = est._read_inputs(store, config, only=set())
     est._write(store, config, inp, [], {}, out, datetime.now())

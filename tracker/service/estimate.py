@@ -205,7 +205,7 @@ def _read_inputs(store: Store, config: Config, refit: set[str] | None = None,
         if market and market_needed:
             inp.market = market_mod.read_market_input(
                 con, inp, refit_all=refit is not None and not refit,
-                rederive=any(p.kind == "rederive" for p in plans))
+                rederive=any(p.kind == "rederive" for p in plans), config=config)
     return inp, plans
 
 

@@ -3,6 +3,11 @@
 Which factors enter: daily factors whose history covers at least 90% of the dates of
 the longest daily series (a newly proposed factor with a short history stays out, so it
 cannot reshape the market regime). Rows where any of them is missing are skipped.
+``[models] market_factors`` names them explicitly; with 'auto' (default) and more than
+``market_factors_max`` eligible factors, the most volatile ones are kept (volatility
+states are what the model separates, and a full-covariance HMM over hundreds of factors
+has more parameters than a history can pin down), and once fitted the set stays as long
+as its factors stay eligible, so new rows do not reshuffle it.
 The model is refit when there is no fit, on a refit of all factors, after a revision,
 or when the set of factors changes; otherwise new complete rows are filtered from the
 saved state.
@@ -60,13 +65,47 @@ class MarketInput:
     matrix: pd.DataFrame              # (T, N) complete rows, columns in ``columns`` order
 
 
-def market_columns(inp) -> list[str]:
+def eligible_columns(inp) -> list[str]:
+    """Daily factors with at least COVERAGE of the longest daily history."""
     daily = inp.factors[inp.factors["frequency"] == "daily"]["factor_id"]
     lengths = {f: inp.rows[f].n_rows for f in daily if f in inp.rows}
     if not lengths:
         return []
     longest = max(lengths.values())
     return sorted(f for f, n in lengths.items() if n >= COVERAGE * longest)
+
+
+def choose_columns(eligible, spec: str, cap: int, previous, variances) -> list[str]:
+    """The market regime's factors (see the module docstring).
+
+    ``variances`` is called (only when a choice by volatility is needed) and returns
+    factor id -> sample variance.
+    """
+    eligible = sorted(eligible)
+    if spec.strip().lower() != "auto":
+        wanted = {f.strip() for f in spec.split(",") if f.strip()}
+        return [f for f in eligible if f in wanted]
+    if len(eligible) <= cap:
+        return eligible
+    if previous and len(previous) == cap and set(previous) <= set(eligible):
+        return sorted(previous)
+    var = variances()
+    return sorted(sorted(eligible, key=lambda f: (-float(var.get(f, 0.0)), f))[:cap])
+
+
+def market_columns(inp, con=None, config=None) -> list[str]:
+    eligible = eligible_columns(inp)
+    if config is None:
+        return eligible
+    prev = _previous(inp)
+
+    def variances() -> dict:
+        rows = con.execute(sql("estimation.factor_variances"), [eligible]).fetchall()
+        return {f: v for f, v in rows if v is not None}
+
+    m = config.models
+    return choose_columns(eligible, m.market_factors, m.market_factors_max,
+                          tuple(prev.columns) if prev is not None and prev.columns else None, variances)
 
 
 def _previous(inp):
@@ -93,9 +132,9 @@ def _wants_fit(inp, columns, *, refit_all: bool, rederive: bool) -> bool:
     return (MARKET, MODEL_MARKET) not in inp.states or not same_columns or refit_all or rederive
 
 
-def read_market_input(con, inp, *, refit_all: bool, rederive: bool) -> MarketInput | None:
+def read_market_input(con, inp, *, refit_all: bool, rederive: bool, config=None) -> MarketInput | None:
     """Read the market's rows on the caller's connection: whole columns only for a fit."""
-    columns = market_columns(inp)
+    columns = market_columns(inp, con, config)
     if len(columns) < 2:
         return None
     refit = _wants_fit(inp, columns, refit_all=refit_all, rederive=rederive)
