@@ -236,3 +236,29 @@ def test_q_floor_is_a_bound_of_the_search():
     # a floor below the estimate does not bind
     low = fit_kim(y, h, TWO, q_min=free.params.q / 50.0 if free.params.q > 0 else 1e-30)
     assert low.loglik == pytest.approx(free.loglik, abs=1e-3)
+
+
+@pytest.mark.parametrize("prior", [None, FilterState.weak_prior(0.0, 1e-6)])
+def test_compiled_likelihood_equals_the_interpreted_kernel(factor, prior):
+    # the compiled twin (numba) of _kim_pass_two's summed log-likelihood, missing rows and
+    # the diffuse start included; the interpreted kernel is the reference
+    import math
+
+    from tracker.estimation import kim_compiled
+    from tracker.estimation.kim_filter import KimState, _kim_pass_two
+
+    r, h = factor
+    valid = np.isfinite(r) & np.isfinite(h)
+    assert r.size >= kim_compiled.MIN_ROWS
+    assert kim_compiled.compiled() is not None      # numba is a declared dependency
+    for c, m in (((0.5, 2.0), (0.0, 0.0)), ((1.0, 4.0), (0.0, -2e-3))):
+        par = KimParams.create(1e-9, c, TWO, m)
+        st = KimState.initial(par, prior=prior)
+        ll = _kim_pass_two(par, r, h, valid, st)[3]
+        want = math.fsum(v for v in ll if v == v)
+        got = kim_compiled.loglik_two(par, r, h, valid, st)
+        interpreted = kim_compiled._loglik_two(
+            par.q, *par.c, *par.m, *TWO.ravel(), *st.prob, *st.mean, *st.var, st.diffuse,
+            r, h, valid)
+        assert got == pytest.approx(want, rel=1e-12)
+        assert interpreted == pytest.approx(want, rel=1e-12)

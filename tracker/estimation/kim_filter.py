@@ -30,6 +30,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.optimize import minimize
 
+from tracker.estimation import kim_compiled
 from tracker.estimation.local_level import (
     _FLAT_LOGLIK,
     _LOG_2PI,
@@ -621,8 +622,12 @@ def fit_kim(y, h, transition, mean_shift: bool = False, fixed_q: float | None = 
         nonlocal n_eval
         n_eval += 1
         par = unpack(x)
-        ll = _run(par, y, h, valid, KimState.initial(par, prior=prior, prob=initial_prob))[3]
-        total = math.fsum(v for v in ll if v == v)
+        st = KimState.initial(par, prior=prior, prob=initial_prob)
+        if k == 2:   # compiled twin of _kim_pass_two's likelihood (tracker.estimation.kim_compiled)
+            total = kim_compiled.loglik_two(par, y, h, valid, st)
+        else:
+            ll = _run(par, y, h, valid, st)[3]
+            total = math.fsum(v for v in ll if v == v)
         # per-observation scale keeps the gradient tolerance meaningful for any T
         return -total / n_valid if math.isfinite(total) else 1e300
 

@@ -1,0 +1,149 @@
+"""The Kim filter's log-likelihood for two regimes, compiled with numba.
+
+A likelihood evaluation is a pass over the whole history, and the fit needs dozens of
+them; the interpreted kernel (:func:`tracker.estimation.kim_filter._kim_pass_two`) costs
+about 2 us per row. This is the same recursion, operation for operation, returning only
+the summed log-likelihood, compiled once per machine (numba's on-disk cache) and used by
+``fit_kim`` for long series. The interpreted kernel stays the reference twin
+(tests/estimation/test_kim_filter.py) and produces every stored filter output.
+
+If numba cannot be imported the fit uses the interpreted kernel: the same numbers,
+slower.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+_LOG_2PI = math.log(2.0 * math.pi)
+# Below this many rows the interpreted kernel is used (compiling costs about a second
+# once per process when the on-disk cache is cold; short passes are cheap anyway).
+MIN_ROWS = 400
+
+
+def _loglik_two(q, c0, c1, m0, m1, p00, p01, p10, p11, pr0, pr1, a0, a1, P0, P1, diffuse,
+                y, h, valid):
+    total = 0.0
+    log_2pi = _LOG_2PI
+    for t in range(y.size):
+        w00, w01, w10, w11 = pr0 * p00, pr0 * p01, pr1 * p10, pr1 * p11
+        if diffuse:
+            pr0, pr1 = w00 + w10, w01 + w11
+            if valid[t]:
+                yt, ht = y[t], h[t]
+                a0, a1 = yt - m0, yt - m1
+                P0, P1 = c0 * ht, c1 * ht
+                diffuse = False
+                total += -0.5 * log_2pi
+            continue
+        if not valid[t]:
+            Pt0, Pt1 = P0 + q, P1 + q
+            b00 = b01 = a0
+            b10 = b11 = a1
+            Q00 = Q01 = Pt0
+            Q10 = Q11 = Pt1
+        else:
+            yt, ht = y[t], h[t]
+            Pt0, Pt1 = P0 + q, P1 + q
+            d0, d1 = yt - a0, yt - a1
+            R0, R1 = c0 * ht, c1 * ht
+            F = Pt0 + R0
+            v = d0 - m0
+            e00 = -0.5 * (log_2pi + math.log(F) + v * v / F)
+            b00 = a0 + Pt0 / F * v
+            Q00 = Pt0 * R0 / F
+            F = Pt1 + R0
+            v = d1 - m0
+            e10 = -0.5 * (log_2pi + math.log(F) + v * v / F)
+            b10 = a1 + Pt1 / F * v
+            Q10 = Pt1 * R0 / F
+            F = Pt0 + R1
+            v = d0 - m1
+            e01 = -0.5 * (log_2pi + math.log(F) + v * v / F)
+            b01 = a0 + Pt0 / F * v
+            Q01 = Pt0 * R1 / F
+            F = Pt1 + R1
+            v = d1 - m1
+            e11 = -0.5 * (log_2pi + math.log(F) + v * v / F)
+            b11 = a1 + Pt1 / F * v
+            Q11 = Pt1 * R1 / F
+            emax = -math.inf
+            if e00 > emax and w00 > 0.0:
+                emax = e00
+            if e10 > emax and w10 > 0.0:
+                emax = e10
+            if e01 > emax and w01 > 0.0:
+                emax = e01
+            if e11 > emax and w11 > 0.0:
+                emax = e11
+            w00 *= math.exp(e00 - emax)
+            w01 *= math.exp(e01 - emax)
+            w10 *= math.exp(e10 - emax)
+            w11 *= math.exp(e11 - emax)
+            ll = emax + math.log(w00 + w01 + w10 + w11)
+            if ll == ll:
+                total += ll
+        # collapse (moment matching over the previous regime), as _collapse_two
+        tot = w00 + w01 + w10 + w11
+        s = w00 + w10
+        if s > 0.0:
+            u0, u1 = w00 / s, w10 / s
+        else:
+            u0, u1 = pr0, pr1
+        n_a0 = u0 * b00 + u1 * b10
+        dv0, dv1 = b00 - n_a0, b10 - n_a0
+        n_P0 = u0 * (Q00 + dv0 * dv0) + u1 * (Q10 + dv1 * dv1)
+        n_pr0 = s / tot
+        s = w01 + w11
+        if s > 0.0:
+            u0, u1 = w01 / s, w11 / s
+        else:
+            u0, u1 = pr0, pr1
+        n_a1 = u0 * b01 + u1 * b11
+        dv0, dv1 = b01 - n_a1, b11 - n_a1
+        n_P1 = u0 * (Q01 + dv0 * dv0) + u1 * (Q11 + dv1 * dv1)
+        pr0, pr1, a0, a1, P0, P1 = n_pr0, s / tot, n_a0, n_a1, n_P0, n_P1
+    return total
+
+
+_compiled = None          # the jitted function, made on first use (importing numba takes ~1 s,
+_tried = False            # which the interface and short advances never need to pay)
+
+
+def compiled():
+    """The compiled kernel, or None when numba is not installed."""
+    global _compiled, _tried
+    if not _tried:
+        _tried = True
+        try:
+            from numba import njit
+        except ImportError:  # pragma: no cover - numba is a declared dependency
+            return None
+        probe = (1e-8, 1.0, 2.0, 0.0, 0.0, 0.9, 0.1, 0.1, 0.9, 0.5, 0.5, 0.0, 0.0, 0.0, 0.0, True,
+                 np.zeros(3), np.ones(3), np.ones(3, dtype=np.bool_))
+        # the on-disk cache needs a writable folder (beside this file or the user's cache);
+        # without one, compile in memory for this process
+        for cache in (True, False):
+            try:
+                fn = njit(cache=cache, nogil=True)(_loglik_two)
+                fn(*probe)
+            except Exception:  # pragma: no cover - depends on the machine's folders
+                continue
+            _compiled = fn
+            break
+    return _compiled
+
+
+def loglik_two(params, y: np.ndarray, h: np.ndarray, valid: np.ndarray, state) -> float:
+    """Summed log-likelihood of a two-regime Kim pass (compiled when available)."""
+    (p00, p01), (p10, p11) = params.transition
+    fn = (compiled() if y.size >= MIN_ROWS else None) or _loglik_two
+    return float(fn(float(params.q), float(params.c[0]), float(params.c[1]),
+                    float(params.m[0]), float(params.m[1]), float(p00), float(p01),
+                    float(p10), float(p11), float(state.prob[0]), float(state.prob[1]),
+                    float(state.mean[0]), float(state.mean[1]), float(state.var[0]),
+                    float(state.var[1]), bool(state.diffuse),
+                    np.ascontiguousarray(y, dtype=np.float64),
+                    np.ascontiguousarray(h, dtype=np.float64),
+                    np.ascontiguousarray(valid, dtype=np.bool_)))
