@@ -36,10 +36,9 @@ from tracker.service.views import Board, load_board
 from tracker.store.connection import Store
 from tracker.store.errors import StoreBusy
 
-try:  # the ingest layer is optional for the UI: without it the UI only watches the store
-    from tracker.ingest.inbox import process_inbox as _process_inbox
-except ImportError:  # pragma: no cover - only when the ingest package is absent
-    _process_inbox = None
+# The ingest layer is part of the product: a broken import must fail loudly, not leave a
+# UI that silently never applies the inbox (it once did, when pyarrow was missing).
+from tracker.ingest.inbox import process_inbox as _process_inbox
 
 Ingest = Callable[[Store, Config], list]
 DEFAULT_INGEST: Ingest | None = _process_inbox
