@@ -5,9 +5,19 @@ from __future__ import annotations
 import shutil
 from pathlib import Path
 
+import os
+
 import pytest
+from hypothesis import settings
 
 from tracker.store.bootstrap import open_store
+
+# Property tests replay the same examples on every run (derandomize) so that a run that
+# lands is reproducible; HYPOTHESIS_PROFILE=explore searches afresh, with more examples,
+# to find new counterexamples (add what it finds as fixed cases).
+settings.register_profile("default", derandomize=True)
+settings.register_profile("explore", derandomize=False, max_examples=1000)
+settings.load_profile(os.environ.get("HYPOTHESIS_PROFILE", "default"))
 
 
 @pytest.fixture(scope="session")

@@ -316,12 +316,29 @@ def _execute_rows(con, text: str, sc: Scan, st: Statement, out: _Pieces) -> None
         except duckdb.Error as err:
             con.execute(clear).fetchall()
             _pinpoint(con, text, head, clear, st, chunk, err)
-        res = con.execute(fetch).fetchnumpy()
+        try:
+            res = con.execute(fetch).fetchnumpy()
+        except duckdb.Error as err:
+            # a value DuckDB stores but cannot hand over, e.g. a date whose year has seven
+            # digits (beyond what a microsecond timestamp holds)
+            con.execute(clear).fetchall()
+            text_err = str(err).splitlines()[0] if str(err) else type(err).__name__
+            raise Rejected(Rejection("bad_value", f"a value cannot be read ({text_err})",
+                                     st.number, chunk[0].line)) from None
         con.execute(clear).fetchall()
         if len(next(iter(res.values()))) != len(chunk):
             raise Rejected(Rejection("sandbox_error", "the sandbox staged a different number of rows than "
                                      "the statement holds", st.number, chunk[0].line))
         decoded = {c: _split_masked(res[c], st.table.column(c).sql_type) for c in st.columns}
+        for c in st.columns:
+            if st.table.column(c).sql_type == "DATE":
+                data, mask = decoded[c]
+                years = data.astype("datetime64[Y]").astype(np.int64) + 1970
+                bad = ~mask & ((years < 1) | (years > 9999))
+                if bad.any():
+                    k = int(np.argmax(bad))
+                    raise Rejected(Rejection("bad_value", f"{c} value {str(data[k])!r} is not a valid DATE "
+                                             "(years 1 to 9999)", st.number, chunk[k].line))
         _add(out, st.table, decoded, st.number, np.array([r.row for r in chunk]))
 
 
