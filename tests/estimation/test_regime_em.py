@@ -148,3 +148,21 @@ def test_model_engines_agree():
     assert a.loglik >= b.loglik - 1e-6 * abs(b.loglik)
     np.testing.assert_allclose(a.params.vols, b.params.vols, rtol=1e-3)
     np.testing.assert_allclose(a.params.transition, b.params.transition, atol=1e-3)
+
+
+def test_near_absorbing_chain_on_a_long_series_stays_finite():
+    # Regression (found in review): with transition probabilities at the EM's floor
+    # (1e-8) and data that alternate between very different regimes, unscaled block
+    # products underflowed to zero on long series (T = 40,000: NaN log-likelihood).
+    # Reference: the plain row-by-row forward recursion (forward-only log-likelihood).
+    t_len = 40_000
+    y = np.where(np.arange(t_len) % 2 == 0, 0.0, 30.0)
+    means, variances = np.array([[0.0, 0.0]]), np.array([[1e-4, 100.0]])
+    trans = np.array([[[1 - 1e-8, 1e-8], [1e-8, 1 - 1e-8]]])
+    gamma, xi, ll = em.e_step(y, means, variances, trans)
+    assert np.all(np.isfinite(gamma)) and np.all(np.isfinite(xi)) and np.isfinite(ll[0])
+    from tracker.estimation.markov_regimes import forward_filter_loop, normal_logpdf_matrix
+
+    log_d = normal_logpdf_matrix(y, means[0], variances[0])
+    _, _, ll_t = forward_filter_loop(log_d, trans[0], em.stationary_batch(trans)[0])
+    assert ll[0] == pytest.approx(ll_t.sum(), rel=1e-9)

@@ -77,13 +77,14 @@ def _loglik_two(q, c0, c1, m0, m1, p00, p01, p10, p11, pr0, pr1, a0, a1, P0, P1,
                 emax = e01
             if e11 > emax and w11 > 0.0:
                 emax = e11
-            w00 *= math.exp(e00 - emax)
-            w01 *= math.exp(e01 - emax)
-            w10 *= math.exp(e10 - emax)
-            w11 *= math.exp(e11 - emax)
+            w00 = w00 * math.exp(e00 - emax) if w00 > 0.0 else 0.0
+            w01 = w01 * math.exp(e01 - emax) if w01 > 0.0 else 0.0
+            w10 = w10 * math.exp(e10 - emax) if w10 > 0.0 else 0.0
+            w11 = w11 * math.exp(e11 - emax) if w11 > 0.0 else 0.0
             ll = emax + math.log(w00 + w01 + w10 + w11)
-            if ll == ll:
-                total += ll
+            if not (ll == ll):
+                return math.nan     # as the interpreted fit, which fails on such a row
+            total += ll
         # collapse (moment matching over the previous regime), as _collapse_two
         tot = w00 + w01 + w10 + w11
         s = w00 + w10

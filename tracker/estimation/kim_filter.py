@@ -312,7 +312,7 @@ def _kim_pass(params: KimParams, y: np.ndarray, h: np.ndarray, valid: np.ndarray
                 if eij > emax and pw[ij] > 0.0:
                     emax = eij
             for ij in range(kk):
-                pw[ij] = pw[ij] * exp(e[ij] - emax)
+                pw[ij] = pw[ij] * exp(e[ij] - emax) if pw[ij] > 0.0 else 0.0
             tot = sum(pw)
             out_ll[t] = emax + log(tot)
             prob, a, P = _collapse(pw, aij, Pij, prob, k)
@@ -400,10 +400,10 @@ def _kim_pass_two(params: KimParams, y: np.ndarray, h: np.ndarray, valid: np.nda
                 emax = e01
             if e11 > emax and w11 > 0.0:
                 emax = e11
-            w00 *= exp(e00 - emax)
-            w01 *= exp(e01 - emax)
-            w10 *= exp(e10 - emax)
-            w11 *= exp(e11 - emax)
+            w00 = w00 * exp(e00 - emax) if w00 > 0.0 else 0.0
+            w01 = w01 * exp(e01 - emax) if w01 > 0.0 else 0.0
+            w10 = w10 * exp(e10 - emax) if w10 > 0.0 else 0.0
+            w11 = w11 * exp(e11 - emax) if w11 > 0.0 else 0.0
             out_ll[t] = emax + log(w00 + w01 + w10 + w11)
             pr0, pr1, a0, a1, P0, P1 = _collapse_two(w00, w01, w10, w11, b00, b01, b10, b11,
                                                      Q00, Q01, Q10, Q11, pr0, pr1)
@@ -599,8 +599,12 @@ def fit_kim(y, h, transition, mean_shift: bool = False, fixed_q: float | None = 
     lo = max(_LOG_SNR_BOUNDS[0], math.log(1e-4 / n_valid**2))
     hi = _LOG_SNR_BOUNDS[1]
     floored = q_min is not None and q_min > 0 and math.log(q_min / h_bar) > lo
-    if floored:
-        lo = min(math.log(q_min / h_bar), hi)
+    if free_q and floored and math.log(q_min / h_bar) >= hi:
+        # the floor is above the search range: q is the floor, only the c are searched
+        fixed_q, floored = float(q_min), False
+        free_q = False
+    elif floored:
+        lo = math.log(q_min / h_bar)
     x0 = np.concatenate((
         [min(max(math.log(max(start.q / h_bar, 1.0 / n_valid**2)), lo), hi)] if free_q else [],
         np.clip(np.log(np.maximum(np.asarray(start.c), 1e-300)), *_LOG_C_BOUNDS),
@@ -642,9 +646,10 @@ def fit_kim(y, h, transition, mean_shift: bool = False, fixed_q: float | None = 
         return _failed("not_converged", f"Optimizer stopped: {res.message}", n_eval)
     params = unpack(res.x)
     message = "Estimated by maximum likelihood at the given transition matrix."
-    if free_q and floored and res.x[0] <= lo + 1e-9:
-        params = KimParams(q=float(q_min), c=params.c, m=params.m, transition=params.transition)
-        message += " q is at the stated floor (the likelihood's maximum lies below it)."
+    if free_q and floored:
+        if res.x[0] <= lo + 1e-9 or params.q < q_min:
+            params = KimParams(q=float(q_min), c=params.c, m=params.m, transition=params.transition)
+            message += " q is at the stated floor (the likelihood's maximum lies below it)."
     elif free_q:
         x_floor = res.x.copy()
         x_floor[0] = lo

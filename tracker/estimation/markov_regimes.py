@@ -835,12 +835,20 @@ class MarkovRegimeModel:
         lls = tuple(float(v) if np.isfinite(v) else -np.inf for v in res.loglik)
         good = [i for i in range(len(starts)) if res.converged[i] and not res.degenerate[i]]
         n_degenerate = int(np.sum(res.degenerate))
+        alive = [i for i in range(len(starts)) if not res.degenerate[i] and np.isfinite(res.loglik[i])]
         if good:
             i = max(good, key=lambda j: res.loglik[j])
+            top = max(alive, key=lambda j: res.loglik[j])
+            if res.loglik[top] > res.loglik[i] + 1e-8 * max(abs(res.loglik[i]), len(y_pct)):
+                # a start still climbing is already above every converged one: the
+                # converged optimum is not the best one found
+                vec = regression_param_vector(model, res.means[top], res.variances[top], res.transition[top])
+                return BestOfFit(vec, float(res.loglik[top]), False, lls, lls,
+                                 f"EM did not converge in {3 * self.maxiter} E steps from the start "
+                                 "with the highest likelihood", True, n_degenerate)
             vec = regression_param_vector(model, res.means[i], res.variances[i], res.transition[i])
             return BestOfFit(vec, float(res.loglik[i]), True, lls, lls,
                              f"EM converged in {int(res.n_iter[i])} E steps", True, n_degenerate)
-        alive = [i for i in range(len(starts)) if not res.degenerate[i] and np.isfinite(res.loglik[i])]
         if not alive:
             msg = "every start failed"
             if n_degenerate:

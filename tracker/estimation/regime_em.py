@@ -31,8 +31,8 @@ from dataclasses import dataclass
 import numpy as np
 
 _LOG_2PI = math.log(2.0 * math.pi)
-# Longest run of unscaled products in :func:`_prefix` (3**-200 ~ 1e-96).
-_MAX_BLOCK = 200
+# Steps between rescalings of the running products in :func:`_prefix`.
+_RESCALE_EVERY = 8
 
 
 @dataclass(frozen=True, eq=False)
@@ -80,11 +80,12 @@ def _prefix(g: np.ndarray, v0: np.ndarray) -> np.ndarray:
     out[:, 0] = v0
     if t_len == 0:
         return out
-    # Within a block the products are not rescaled: every G_t has a row whose largest
-    # entry is at least 1/K (the regime with the largest density has lik = 1), so the
-    # largest entry of a product of b of them is at least K**-b, far from underflow for
-    # b <= _MAX_BLOCK. Entries tiny relative to it may underflow; they are negligible.
-    b = min(_MAX_BLOCK, max(8, int(math.sqrt(t_len))))
+    # Within a block the running product is rescaled by its largest entry every
+    # _RESCALE_EVERY steps only (a reduction per step cost more than the products): between
+    # rescalings the largest entry can shrink by about the smallest transition probability
+    # per step (min_stay = 1e-8 in the fit), 1e-64 over 8 steps, far from underflow.
+    # Should a product still vanish, those starts are redone row by row.
+    b = max(8, int(math.sqrt(t_len)))
     nb = -(-t_len // b)
     gg = np.empty((s, nb * b, k, k))
     gg[:, :t_len] = g
@@ -94,6 +95,8 @@ def _prefix(g: np.ndarray, v0: np.ndarray) -> np.ndarray:
     pref[:, :, 0] = gg[:, :, 0]
     for j in range(1, b):
         np.matmul(pref[:, :, j - 1], gg[:, :, j], out=pref[:, :, j])
+        if j % _RESCALE_EVERY == 0:
+            pref[:, :, j] /= pref[:, :, j].max(axis=(-2, -1), keepdims=True)
     starts = np.empty((s, nb, 1, k))
     v = np.asarray(v0, float).reshape(s, 1, k)
     ends = pref[:, :, -1]
@@ -102,7 +105,15 @@ def _prefix(g: np.ndarray, v0: np.ndarray) -> np.ndarray:
         w = np.matmul(v, ends[:, i])
         v = w / w.sum(axis=2, keepdims=True)
     q = np.matmul(starts[:, :, None], pref)[..., 0, :].reshape(s, nb * b, k)[:, :t_len]
-    out[:, 1:] = q / q.sum(axis=2, keepdims=True)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out[:, 1:] = q / q.sum(axis=2, keepdims=True)
+    bad = ~np.all(np.isfinite(out), axis=(1, 2))
+    for i in np.flatnonzero(bad):
+        v = np.asarray(v0[i], float)
+        for t in range(t_len):
+            w = v @ g[i, t]
+            v = w / w.sum()
+            out[i, t + 1] = v
     return out
 
 
@@ -247,7 +258,7 @@ def fit_em(y, means, variances, transition, *, max_iter: int = 500, tol: float =
         E steps per start at most (three per cycle).
     tol : float
         A start has converged when a cycle raises its log-likelihood by less than
-        ``tol * |loglik|``.
+        ``tol * max(|loglik|, T)``.
     variance_floor : float
         Lower bound on every regime variance (in the units of ``y`` squared).
     min_stay : float
@@ -291,7 +302,9 @@ def fit_em(y, means, variances, transition, *, max_iter: int = 500, tol: float =
         new_p = np.where(take[:, None, None], p3, p2)
         best = np.where(take, llx, ll1)                            # ll before the last step
         ok = np.isfinite(ll0) & np.isfinite(best)
-        done = ok & (np.abs(best - last[act]) <= tol * np.abs(best))
+        # relative to the sample size too: a log-likelihood near zero (percent units, daily
+        # sd ~0.3%) must not make the tolerance vanish below rounding
+        done = ok & (np.abs(best - last[act]) <= tol * np.maximum(np.abs(best), y.size))
         mu[act], var[act], p[act] = new_m, new_v, new_p
         last[act] = best
         converged[act[done]] = True

@@ -302,7 +302,8 @@ def run_factor(task: FactorTask) -> FactorOutput:
         # a shared q keeps the two premium paths comparable; it also needs about half the
         # likelihood evaluations. 'free' estimates its own q, bounded by the floor.
         shared_q = ll_params.q if (s.get("regime_premium_q", "shared") == "shared"
-                                   and ll_params is not None and ll_params.q > 0) else None
+                                   and ll_params is not None and math.isfinite(ll_params.q)
+                                   and ll_params.q >= 0) else None
         kfit = fit_kim(y, h, np.asarray(rp.transition), start=start, min_obs=s["min_obs"],
                        q_min=q_floor if q_floor > 0 else None, fixed_q=shared_q)
         kfitted, floored = _apply_floor(kfit.params.to_dict() if kfit.status == "ok" and kfit.params else {}, q_floor)
@@ -310,7 +311,7 @@ def run_factor(task: FactorTask) -> FactorOutput:
         fits.append(FitRecord(MODEL_REGIME_PREMIUM, kfit.status, kmsg, kfitted,
                               _finite_or_nan(kfit.loglik), int(np.isfinite(y).sum()), bool(kfit.converged)))
         params[MODEL_REGIME_PREMIUM] = kfitted
-        status[MODEL_REGIME_PREMIUM], message[MODEL_REGIME_PREMIUM] = kfit.status, kfit.message
+        status[MODEL_REGIME_PREMIUM], message[MODEL_REGIME_PREMIUM] = kfit.status, kmsg
     elif rp is None and task.refit:
         params[MODEL_REGIME_PREMIUM] = {}
     if rp is not None and not task.refit:
@@ -348,7 +349,7 @@ def _kim_cold_start(y, h, ll_params, rp, regime_filtered) -> KimParams | None:
     """
     if ll_params is None or regime_filtered is None:
         return None
-    ok = np.isfinite(y) & np.isfinite(h) & np.all(np.isfinite(regime_filtered), axis=1)
+    ok = np.isfinite(y) & np.isfinite(h) & (h > 0) & np.all(np.isfinite(regime_filtered), axis=1)
     if ok.sum() < 10:
         return None
     e2 = (y[ok] - y[ok].mean()) ** 2
