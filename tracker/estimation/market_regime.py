@@ -475,9 +475,9 @@ class MarketRegimeModel:
         level = hmm_log.level
         hmm_log.setLevel(logging.ERROR)  # its "not converging" notes become our statuses
         try:
-            # a warm refit: the previous optimum (when it had k states) and the default
+            # a warm refit (k is the previous fit's number of states): its optimum and the default
             # quantile start; a cold fit: the default start and n_seeds - 1 random ones
-            runs = ([-1, 0] if warm.n_states == k else [0]) if warm is not None else range(self.n_seeds)
+            runs = [-1, 0] if warm is not None else range(self.n_seeds)
             for i in runs:
                 seed = self.seed + max(i, 0)
                 try:
@@ -586,9 +586,10 @@ class MarketRegimeModel:
 
         cands, models = [], {}
         warm = previous if (warm_start and previous is not None and previous.n_factors == n
+                            and previous.n_states in self.states
                             and np.all(np.isfinite(previous.means))
                             and np.all(np.isfinite(previous.covars))) else None
-        states = (warm.n_states,) if warm is not None and warm.n_states in self.states else self.states
+        states = (warm.n_states,) if warm is not None else self.states
         for k in states:
             cand, hmm = self._fit_candidate(z, k, scale, warm)
             cands.append(cand)

@@ -290,7 +290,6 @@ def _update_locked(store, config, refit, only, progress, executor, observer=None
     if not plans and inp.market is None:
         return RunSummary(kinds={}, timings=timings)
     settings = {**_settings(config), "cold": bool(cold)}
-    inp.cold_market = bool(cold)
     tasks = [_task(inp, p, inp.freq[p.factor_id], settings) for p in plans]
     heavy = [t for t in tasks if t.refit]
     light = [t for t in tasks if not t.refit]
@@ -317,7 +316,7 @@ def _update_locked(store, config, refit, only, progress, executor, observer=None
         for out in outputs.values():
             observer(out)
 
-    market = market_mod.run_market(inp, config, refit_all=refit is not None and not refit,
+    market = market_mod.run_market(inp, config, cold=cold, refit_all=refit is not None and not refit,
                                    rederive=any(p.kind == "rederive" for p in plans))
     lap("market")
     if not plans and market is None:

@@ -148,7 +148,7 @@ def read_market_input(con, inp, *, refit_all: bool, rederive: bool, config=None)
     return MarketInput(tuple(columns), refit, x)
 
 
-def run_market(inp, config, *, refit_all: bool, rederive: bool) -> MarketOutput | None:
+def run_market(inp, config, *, refit_all: bool, rederive: bool, cold: bool = False) -> MarketOutput | None:
     mk = inp.market
     if mk is None:
         return None
@@ -174,7 +174,7 @@ def run_market(inp, config, *, refit_all: bool, rederive: bool) -> MarketOutput 
         # a refit of a store that has a market fit over the same factors starts from it
         # (see MarketRegimeModel.fit); a first fit, or new factors, is cold
         fit = model.fit(x.to_numpy(), previous=prev_params if same_columns else None, columns=tuple(columns),
-                        warm_start=same_columns and not getattr(inp, "cold_market", False))
+                        warm_start=same_columns and not cold)
         if fit.status != "ok" or fit.filtered is None:
             return MarketOutput("fit", tuple(columns), fit, {}, {}, dates[:0], np.empty((0, 0)),
                                 np.empty((0, 0)), dates[-1], vintage, None)
