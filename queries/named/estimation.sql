@@ -42,12 +42,6 @@ SELECT fit_id, subject_id, model, status, message, params_json, loglik, n_obs, c
        data_from, data_through, reason, fitted_at
 FROM model_fits WHERE is_current ORDER BY subject_id, model;
 
--- name: current_vintage
-SELECT subject_id, max(vintage) AS vintage FROM (
-    SELECT factor_id AS subject_id, vintage FROM premium_estimates
-    UNION ALL SELECT subject_id, vintage FROM regime_estimates
-) GROUP BY subject_id;
-
 -- name: last_estimate_dates
 SELECT factor_id, max(date) AS last_date FROM premium_estimates WHERE superseded_at IS NULL GROUP BY factor_id;
 
@@ -99,15 +93,6 @@ GROUP BY r.series_id;
 SELECT series_id AS factor_id, count(*) AS n FROM revisions
 WHERE series_kind = 'factor' AND revised_at >= ? GROUP BY series_id;
 
--- name: latest_warning_codes
--- Codes in force at each factor's latest estimated date.
-SELECT w.subject_id, list(w.code) AS codes
-FROM warnings w
-JOIN (SELECT factor_id, max(date) AS d FROM premium_estimates WHERE superseded_at IS NULL GROUP BY factor_id) l
-  ON l.factor_id = w.subject_id AND l.d = w.date
-WHERE w.superseded_at IS NULL
-GROUP BY w.subject_id;
-
 -- name: current_premium_history
 SELECT factor_id, date, premium, premium_sd, std_error, loglik_t
 FROM premium_estimates WHERE superseded_at IS NULL AND factor_id = ? ORDER BY date;
@@ -121,30 +106,6 @@ SELECT subject_id, model, through_date, updated_at FROM filter_states;
 
 -- Reads of the incremental path: counts instead of whole histories, and only the rows
 -- each update needs (the whole history only for fits, re-derivations and fallbacks).
-
--- name: row_counts
--- Per factor: rows, finite rows, first and last date, last finite date (one scan, no join).
-SELECT factor_id, count(*) AS n_rows, count(*) FILTER (WHERE isfinite(ret)) AS n_finite,
-       min(date) AS first_date, max(date) AS last_date,
-       max(date) FILTER (WHERE isfinite(ret)) AS last_finite_date
-FROM factor_returns GROUP BY factor_id;
-
--- name: rows_after_state
--- Per factor with a premium filter state: rows after the state's date and rows after the
--- current premium fit's data (only rows after the earlier of the two are counted).
-WITH bounds AS (
-    SELECT s.subject_id AS factor_id, s.through_date,
-           coalesce(f.data_through, s.through_date) AS fit_through
-    FROM filter_states s
-    LEFT JOIN (SELECT subject_id, max(data_through) AS data_through FROM model_fits
-               WHERE model = 'premium' AND is_current GROUP BY subject_id) f ON f.subject_id = s.subject_id
-    WHERE s.model = 'premium'
-)
-SELECT r.factor_id, count(*) FILTER (WHERE r.date > b.through_date) AS n_after,
-       count(*) FILTER (WHERE r.date > b.fit_through) AS since_fit
-FROM factor_returns r JOIN bounds b USING (factor_id)
-WHERE r.date > least(b.through_date, b.fit_through)
-GROUP BY r.factor_id;
 
 -- name: factor_variances
 -- Sample variance of each named factor's stored returns (choosing the market regime's factors).
@@ -173,3 +134,73 @@ SELECT subject_id, model, fit_id, through_date, state_json, updated_at FROM inco
 INSERT INTO estimation_runs (run_id, kind, reason, subjects, from_date, through_date, started_at, status, message)
 SELECT nextval('seq_run_id'), kind, reason, subjects, from_date, through_date, started_at, status, message
 FROM incoming_frame;
+
+-- Reads of a day's update that do not grow with the history: each premium filter state
+-- keeps a book of its factor's row counts, vintage and latest codes (see estimate_io),
+-- and only the rows since that book are counted. The *_of queries (whole histories of the
+-- named factors) run for factors without a book, on a refit request (every factor: the
+-- books are checked against them) and where a drop wrote on or before a book's date.
+
+-- name: drop_seen
+-- The newest drop id: every drop applied later has a larger one (ids come from a sequence,
+-- drawn inside the applying transaction, and connections to the store are exclusive).
+SELECT coalesce(max(drop_id), 0) FROM drop_files;
+
+-- name: rows_since_books
+-- Per booked factor, incoming_frame(factor_id, through_date, drop_seen): the rows after its
+-- book's date, and the rows dated on or before it written by a later drop (revised or
+-- inserted). The constant bounds (? = earliest book date, ? = smallest drop id seen) let the
+-- scan skip most rows before the join.
+SELECT r.factor_id,
+       count(*) FILTER (WHERE r.date > b.through_date) AS n_after,
+       count(*) FILTER (WHERE r.date > b.through_date AND isfinite(r.ret)) AS n_after_finite,
+       max(r.date) FILTER (WHERE r.date > b.through_date) AS last_after,
+       max(r.date) FILTER (WHERE r.date > b.through_date AND isfinite(r.ret)) AS last_finite_after,
+       count(*) FILTER (WHERE r.date <= b.through_date AND r.drop_id > b.drop_seen) AS n_back
+FROM factor_returns r JOIN incoming_frame b USING (factor_id)
+WHERE (r.date > CAST(? AS DATE) OR r.drop_id > CAST(? AS BIGINT))
+GROUP BY r.factor_id;
+
+-- name: row_counts_of
+-- Per named factor: rows, finite rows, first and last date, last finite date.
+SELECT factor_id, count(*) AS n_rows, count(*) FILTER (WHERE isfinite(ret)) AS n_finite,
+       min(date) AS first_date, max(date) AS last_date,
+       max(date) FILTER (WHERE isfinite(ret)) AS last_finite_date
+FROM factor_returns WHERE factor_id IN (SELECT unnest(CAST(? AS VARCHAR[]))) GROUP BY factor_id;
+
+-- name: current_vintage_of
+-- Current vintage of the named factors (? premium) and regime subjects (?).
+SELECT subject_id, max(vintage) AS vintage FROM (
+    SELECT factor_id AS subject_id, vintage FROM premium_estimates
+    WHERE factor_id IN (SELECT unnest(CAST(? AS VARCHAR[])))
+    UNION ALL SELECT subject_id, vintage FROM regime_estimates
+    WHERE subject_id IN (SELECT unnest(CAST(? AS VARCHAR[])))
+) GROUP BY subject_id;
+
+-- name: latest_warning_codes_of
+-- Codes in force at each named factor's latest estimated date.
+SELECT w.subject_id, list(w.code) AS codes
+FROM warnings w
+JOIN (SELECT factor_id, max(date) AS d FROM premium_estimates
+      WHERE superseded_at IS NULL AND factor_id IN (SELECT unnest(CAST(? AS VARCHAR[])))
+      GROUP BY factor_id) l
+  ON l.factor_id = w.subject_id AND l.d = w.date
+WHERE w.superseded_at IS NULL
+GROUP BY w.subject_id;
+
+-- name: rows_after_state_of
+-- Per named factor with a premium filter state: rows after the state's date and rows after
+-- the current premium fit's data (only rows after the earlier of the two are counted).
+WITH bounds AS (
+    SELECT s.subject_id AS factor_id, s.through_date,
+           coalesce(f.data_through, s.through_date) AS fit_through
+    FROM filter_states s
+    LEFT JOIN (SELECT subject_id, max(data_through) AS data_through FROM model_fits
+               WHERE model = 'premium' AND is_current GROUP BY subject_id) f ON f.subject_id = s.subject_id
+    WHERE s.model = 'premium' AND s.subject_id IN (SELECT unnest(CAST(? AS VARCHAR[])))
+)
+SELECT r.factor_id, count(*) FILTER (WHERE r.date > b.through_date) AS n_after,
+       count(*) FILTER (WHERE r.date > b.fit_through) AS since_fit
+FROM factor_returns r JOIN bounds b USING (factor_id)
+WHERE r.date > least(b.through_date, b.fit_through)
+GROUP BY r.factor_id;

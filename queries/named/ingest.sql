@@ -80,6 +80,31 @@ FROM (
 WHERE k <= ?
 GROUP BY asset_id;
 
+-- name: trailing_factor_sd_recent
+-- As trailing_factor_sd, over the rows dated at most ? days before the latest stored date
+-- only (a scan of the date column instead of a window over whole histories). A factor
+-- with fewer than TRAILING_ROWS rows there is looked up again with trailing_factor_sd.
+SELECT factor_id AS id, stddev_samp(ret) AS sd, count(*) AS n
+FROM (
+    SELECT r.factor_id, r.ret,
+           row_number() OVER (PARTITION BY r.factor_id ORDER BY r.date DESC) AS k
+    FROM factor_returns r SEMI JOIN incoming_frame i ON r.factor_id = i.id
+    WHERE r.date >= (SELECT max(date) FROM factor_returns) - CAST(? AS INTEGER)
+)
+WHERE k <= ?
+GROUP BY factor_id;
+
+-- name: trailing_asset_sd_recent
+SELECT asset_id AS id, stddev_samp(ret) AS sd, count(*) AS n
+FROM (
+    SELECT r.asset_id, r.ret,
+           row_number() OVER (PARTITION BY r.asset_id ORDER BY r.date DESC) AS k
+    FROM asset_returns r SEMI JOIN incoming_frame i ON r.asset_id = i.id
+    WHERE r.date >= (SELECT max(date) FROM asset_returns) - CAST(? AS INTEGER)
+)
+WHERE k <= ?
+GROUP BY asset_id;
+
 -- name: stored_months_factor
 -- Stored dates of the given series in the given months: incoming_frame(id, month).
 SELECT r.factor_id AS id, r.date

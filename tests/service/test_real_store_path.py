@@ -6,21 +6,14 @@ import math
 
 import numpy as np
 import pandas as pd
+from drop_helpers import drop as _drop
+from drop_helpers import returns_sql as _returns_sql
 
 from tracker.ingest import process_inbox
 from tracker.service.estimate import update
 from tracker.service.views import load_board
 
 
-def _drop(inbox, name: str, text: str) -> None:
-    tmp = inbox / f".{name}.tmp"
-    tmp.write_text(text, "utf-8")
-    tmp.rename(inbox / name)
-
-
-def _returns_sql(fid: str, dates, values) -> str:
-    rows = ",\n".join(f"  ('{fid}', DATE '{d:%Y-%m-%d}', {v:.10f})" for d, v in zip(dates, values))
-    return f"INSERT INTO factor_returns VALUES\n{rows};\n"
 
 
 def test_short_series_is_reported_as_too_little_data_never_as_a_number(empty_store):

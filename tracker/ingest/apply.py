@@ -183,9 +183,7 @@ def _validate(con, staged: Staged, config: Config, today: date) -> tuple[Declara
             ids[st.null["frequency"]] = "daily"
         codes, uniq = pd.factorize(ids)
         if name != "risk_free":
-            _register(con, pa.table({"id": pa.array(list(uniq), pa.string())}))
-            trailing[name] = con.execute(sql(f"ingest.trailing_{kind}_sd"), [TRAILING_ROWS]).df().set_index("id")
-            con.unregister("incoming_frame")
+            trailing[name] = _trailing_sd(con, kind, list(uniq))
             freq = plan.series[name].frequency
             monthly_u = np.array([freq.get(x) == "monthly" for x in uniq], dtype=bool)
         else:
@@ -203,6 +201,38 @@ def _validate(con, staged: Staged, config: Config, today: date) -> tuple[Declara
             con.unregister("incoming_frame")
     checked = check_returns(staged, plan, trailing, months, config.ingest, today)
     return plan, checked
+
+
+# Calendar days before the latest stored date that hold TRAILING_ROWS rows of a daily
+# series with room for holidays and short gaps (63 business days span about 91).
+TRAILING_WINDOW_DAYS = 130
+
+
+def _trailing_sd(con, kind: str, ids: list[str]) -> pd.DataFrame:
+    """Sd and count of the last TRAILING_ROWS stored returns of each id (index ``id``).
+
+    The recent window answers every series with that many rows inside it (its last
+    TRAILING_ROWS rows are then the window's last ones, so the result is exact); the
+    others (monthly, short or stale series) are looked up over their whole history. A
+    daily drop so costs a scan of the date column, not a window over every history.
+    """
+    _register(con, pa.table({"id": pa.array(ids, pa.string())}))
+    try:
+        recent = con.execute(sql(f"ingest.trailing_{kind}_sd_recent"),
+                             [TRAILING_WINDOW_DAYS, TRAILING_ROWS]).df().set_index("id")
+    finally:
+        con.unregister("incoming_frame")
+    full = recent.index[recent["n"] >= TRAILING_ROWS]
+    answered = set(full)
+    rest = [i for i in ids if i not in answered]
+    if not rest:
+        return recent.loc[full]
+    _register(con, pa.table({"id": pa.array(rest, pa.string())}))
+    try:
+        exact = con.execute(sql(f"ingest.trailing_{kind}_sd"), [TRAILING_ROWS]).df().set_index("id")
+    finally:
+        con.unregister("incoming_frame")
+    return pd.concat([recent.loc[full], exact])
 
 
 def _register(con, table: pa.Table) -> None:

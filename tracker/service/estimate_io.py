@@ -10,6 +10,7 @@ states, runs), so a day's update of hundreds of factors is a handful of statemen
 
 from __future__ import annotations
 
+import dataclasses
 import json
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
@@ -50,20 +51,78 @@ class Inputs:
     history: dict = field(default_factory=dict)   # factor_id -> (premium df, regime df), stored
     market: object = None                         # market_mod.MarketInput
     freq: dict = field(default_factory=dict)      # factor_id -> frequency
+    drop_seen: int = 0                            # newest drop id when read (books record it)
+    books: dict = field(default_factory=dict)     # (subject, model) -> Book of its state
 
 
 def _day(x) -> np.datetime64 | None:
     return None if x is None or pd.isna(x) else np.datetime64(pd.Timestamp(x).date(), "D")
 
 
-def read_meta(con) -> Inputs:
+BOOK_KEY = "book"                 # the row book's key in a filter state
+
+
+@dataclass(frozen=True)
+class Book:
+    """What a filter state knew of its subject when it was written (key ``"book"``).
+
+    For a factor: the counts and dates of its stored returns up to the state's date, the
+    rows after its premium fit's data, the vintage and the warning codes at its latest
+    estimated date, and the newest drop id then applied. A day's update counts only the
+    rows since (:func:`read_meta`) instead of aggregating every history again.
+    """
+
+    through: str
+    drop_seen: int
+    vintage: int
+    n_rows: int | None = None
+    n_finite: int | None = None
+    first: str | None = None
+    last_finite: str | None = None
+    since_fit: int | None = None
+    codes: tuple | None = None
+
+    @property
+    def has_rows(self) -> bool:
+        return None not in (self.n_rows, self.n_finite, self.first, self.since_fit)
+
+    def to_dict(self) -> dict:
+        d = dataclasses.asdict(self)
+        d["codes"] = None if self.codes is None else list(self.codes)
+        return d
+
+    @classmethod
+    def of_state(cls, row: dict) -> Book | None:
+        """The state's book when it belongs to exactly this state (same date), else None."""
+        d = row["state"].get(BOOK_KEY) if isinstance(row.get("state"), dict) else None
+        if not isinstance(d, dict) or d.get("through") != str(_day(row["through_date"])):
+            return None
+        try:
+            codes = d.get("codes")
+            return cls(str(d["through"]), int(d["drop_seen"]), int(d["vintage"]),
+                       _int_or_none(d.get("n_rows")), _int_or_none(d.get("n_finite")),
+                       d.get("first"), d.get("last_finite"), _int_or_none(d.get("since_fit")),
+                       None if codes is None else tuple(str(c) for c in codes))
+        except (KeyError, TypeError, ValueError):
+            return None
+
+
+def _int_or_none(x) -> int | None:
+    return None if x is None else int(x)
+
+
+def read_meta(con, *, verify: bool = False) -> Inputs:
+    """The run's metadata; per factor a :class:`RowInfo`.
+
+    A factor whose premium state carries a :class:`Book` gets its counts from the book plus
+    the rows since (a scan that skips most of the table); the others, every factor with
+    ``verify`` (a refit request), and a factor a drop wrote to on or before its book's date
+    (a revision or a late row) are counted over their whole histories. Rows reach the store
+    through the ingest (:mod:`tracker.ingest.apply`), which stamps each with its drop id;
+    rows written around it are seen by the next ``verify`` run.
+    """
     read_at = con.execute("SELECT current_timestamp").fetchone()[0]
     factors = con.execute(sql("estimation.factors")).df()
-    after = {r[0]: (int(r[1]), int(r[2])) for r in con.execute(sql("estimation.rows_after_state")).fetchall()}
-    rows = {}
-    for r in con.execute(sql("estimation.row_counts")).fetchall():
-        n_after, since_fit = after.get(r[0], (0, 0))
-        rows[r[0]] = RowInfo(int(r[1]), int(r[2]), _day(r[3]), _day(r[4]), _day(r[5]), int(r[1]) - n_after, since_fit)
     cur = con.execute(sql("estimation.current_fits"))
     names = [d[0] for d in cur.description]
     fits = {}
@@ -74,13 +133,75 @@ def read_meta(con) -> Inputs:
     for subject, model, fit_id, through, text in con.execute(sql("estimation.filter_states")).fetchall():
         states[(subject, model)] = {"subject_id": subject, "model": model, "fit_id": fit_id,
                                     "through_date": through, "state_json": text, "state": json.loads(text)}
-    vintages = dict(con.execute(sql("estimation.current_vintage")).fetchall())
+    drop_seen = int(con.execute(sql("estimation.drop_seen")).fetchall()[0][0])
+    books = {}
+    for (subject, model), row in states.items():
+        book = Book.of_state(row)
+        if book is not None:
+            books[(subject, model)] = book
+    factor_ids = factors["factor_id"].tolist()
+    rows = _row_infos(con, factor_ids, {} if verify else {
+        s: b for (s, m), b in books.items() if m == "premium" and b.has_rows})
+    vintages: dict = {}
+    for (subject, _), book in books.items():
+        vintages[subject] = max(vintages.get(subject, 0), book.vintage)
+    unknown = [f for f in factor_ids if f not in vintages]
+    subjects = [s for s in dict.fromkeys(factor_ids + [s for s, _ in states]) if s not in vintages]
+    if unknown or subjects:
+        vintages.update(dict(con.execute(sql("estimation.current_vintage_of"), [unknown, subjects]).fetchall()))
+    codes = {}
+    for f in factor_ids:
+        book = books.get((f, "premium"))
+        if book is not None and book.codes is not None:
+            if book.codes:
+                codes[f] = set(book.codes)
+    missing = [f for f in factor_ids if books.get((f, "premium")) is None or books[(f, "premium")].codes is None]
+    if missing:
+        codes.update({r[0]: set(r[1]) for r in con.execute(sql("estimation.latest_warning_codes_of"), [missing]).fetchall()})
     revisions = {r[0]: r[1] for r in con.execute(sql("estimation.pending_revisions")).fetchall()}
     since = (read_at - timedelta(days=7)) if read_at is not None else datetime(1970, 1, 1)
     recent = dict(con.execute(sql("estimation.recent_revision_counts"), [since]).fetchall())
-    codes = {r[0]: set(r[1]) for r in con.execute(sql("estimation.latest_warning_codes")).fetchall()}
     stamps = {(r[0], r[1]): r[3] for r in con.execute(sql("estimation.state_stamps")).fetchall()}
-    return Inputs(read_at, factors, rows, fits, states, vintages, revisions, recent, codes, stamps)
+    inp = Inputs(read_at, factors, rows, fits, states, vintages, revisions, recent, codes, stamps)
+    inp.drop_seen, inp.books = drop_seen, books
+    return inp
+
+
+def _row_infos(con, factor_ids: list[str], books: dict) -> dict:
+    """RowInfo per factor with rows: from ``books`` plus the rows since, or counted whole."""
+    rows = {}
+    exact = [f for f in factor_ids if f not in books]
+    if books:
+        frame = pd.DataFrame({
+            "factor_id": list(books),
+            "through_date": pd.to_datetime([b.through for b in books.values()]).date,
+            "drop_seen": np.array([b.drop_seen for b in books.values()], dtype=np.int64),
+        })
+        con.register("incoming_frame", frame)
+        try:
+            since = {r[0]: r[1:] for r in con.execute(sql("estimation.rows_since_books"), [
+                min(frame["through_date"]), int(frame["drop_seen"].min())]).fetchall()}
+        finally:
+            con.unregister("incoming_frame")
+        for fid, b in books.items():
+            if fid not in factor_ids:
+                continue
+            n_after, nf_after, last_after, lastf_after, n_back = since.get(fid, (0, 0, None, None, 0))
+            if n_back:
+                exact.append(fid)           # a drop revised or filled in rows the book counted
+                continue
+            last = _day(last_after) if last_after is not None else _day(b.through)
+            last_finite = _day(lastf_after) if lastf_after is not None else _day(b.last_finite)
+            rows[fid] = RowInfo(b.n_rows + int(n_after), b.n_finite + int(nf_after), _day(b.first), last,
+                                last_finite, b.n_rows, b.since_fit + int(n_after))
+    if exact:
+        after = {r[0]: (int(r[1]), int(r[2]))
+                 for r in con.execute(sql("estimation.rows_after_state_of"), [exact]).fetchall()}
+        for r in con.execute(sql("estimation.row_counts_of"), [exact]).fetchall():
+            n_after, since_fit = after.get(r[0], (0, 0))
+            rows[r[0]] = RowInfo(int(r[1]), int(r[2]), _day(r[3]), _day(r[4]), _day(r[5]),
+                                 int(r[1]) - n_after, since_fit)
+    return rows
 
 
 def _grouped(df: pd.DataFrame) -> dict:

@@ -24,6 +24,7 @@ import pandas as pd
 
 from tracker.estimation.market_regime import MarketRegimeModel, MarketRegimeParams, market_filter
 from tracker.estimation.markov_regimes import RegimeFilterState
+from tracker.service.estimate_io import BOOK_KEY, Book
 from tracker.service.factor_models import dumps
 from tracker.store.sqlfiles import sql
 
@@ -225,8 +226,10 @@ def write_market(con, out: MarketOutput, inp, started) -> None:
         con.execute(sql("estimation.insert_regime_frame"))
         con.unregister("incoming_frame")
     if out.state:
+        through = pd.Timestamp(out.through).date()
+        book = Book(through=str(through), drop_seen=int(inp.drop_seen), vintage=int(out.vintage))
         con.execute(sql("estimation.upsert_filter_state"), [
-            MARKET, MODEL_MARKET, fit_id or 0, pd.Timestamp(out.through).date(), dumps(out.state), inp.read_at,
+            MARKET, MODEL_MARKET, fit_id or 0, through, dumps({**out.state, BOOK_KEY: book.to_dict()}), inp.read_at,
         ])
 
 
