@@ -28,6 +28,7 @@ def _positive(x: float) -> bool:
 class StoreSettings:
     inbox: str = "inbox"            # folder for drop files, relative to the store's folder
     busy_timeout_s: float = 30.0    # how long to wait while another process holds the store
+    memory_limit_mb: int = 1024     # DuckDB's buffer memory per connection (it spills to disk beyond)
 
 
 @dataclass(frozen=True)

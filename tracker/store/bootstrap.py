@@ -31,7 +31,7 @@ def open_store(path: Path, *, create_demo: bool = True) -> tuple[Store, Config]:
     if is_new:
         check_writable_folder(folder)
     config = load_config(folder)  # validate before writing anything
-    store = Store(path, busy_timeout=config.store.busy_timeout_s)
+    store = Store(path, busy_timeout=config.store.busy_timeout_s, memory_limit_mb=config.store.memory_limit_mb)
     if is_new:
         _create(store, create_demo=create_demo)
     else:
