@@ -374,9 +374,11 @@ def _book(inp: Inputs, plan: Plan, out: FactorOutput, codes: dict) -> Book:
     row = inp.rows[plan.factor_id]
     refitted = any(rec.model == MODEL_PREMIUM for rec in out.fits)
     latest = codes.get(plan.factor_id)
-    if latest is None:                       # nothing stored at a new date: the codes stand
+    if latest is None and plan.kind != "rederive":   # nothing stored at a new date: the codes stand
         old = inp.books.get((plan.factor_id, MODEL_PREMIUM))
         latest = old.codes if old is not None else None
+    # a re-derivation that stored no rows superseded the latest ones: None, so the next
+    # run reads the codes in force from the store
     return Book(through=str(row.last), drop_seen=int(inp.drop_seen), vintage=int(plan.vintage),
                 n_rows=row.n_rows, n_finite=row.n_finite, first=str(row.first),
                 last_finite=None if row.last_finite is None else str(row.last_finite),
