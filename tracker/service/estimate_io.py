@@ -149,13 +149,9 @@ def read_meta(con, *, verify: bool = False) -> Inputs:
     subjects = [s for s in dict.fromkeys(factor_ids + [s for s, _ in states]) if s not in vintages]
     if unknown or subjects:
         vintages.update(dict(con.execute(sql("estimation.current_vintage_of"), [unknown, subjects]).fetchall()))
-    codes = {}
-    for f in factor_ids:
-        book = books.get((f, "premium"))
-        if book is not None and book.codes is not None:
-            if book.codes:
-                codes[f] = set(book.codes)
-    missing = [f for f in factor_ids if books.get((f, "premium")) is None or books[(f, "premium")].codes is None]
+    booked = {f: b.codes for f in factor_ids if (b := books.get((f, "premium"))) is not None and b.codes is not None}
+    codes = {f: set(c) for f, c in booked.items() if c}
+    missing = [f for f in factor_ids if f not in booked]
     if missing:
         codes.update({r[0]: set(r[1]) for r in con.execute(sql("estimation.latest_warning_codes_of"), [missing]).fetchall()})
     revisions = {r[0]: r[1] for r in con.execute(sql("estimation.pending_revisions")).fetchall()}
@@ -171,6 +167,7 @@ def _row_infos(con, factor_ids: list[str], books: dict) -> dict:
     """RowInfo per factor with rows: from ``books`` plus the rows since, or counted whole."""
     rows = {}
     exact = [f for f in factor_ids if f not in books]
+    declared = set(factor_ids)
     if books:
         frame = pd.DataFrame({
             "factor_id": list(books),
@@ -184,7 +181,7 @@ def _row_infos(con, factor_ids: list[str], books: dict) -> dict:
         finally:
             con.unregister("incoming_frame")
         for fid, b in books.items():
-            if fid not in factor_ids:
+            if fid not in declared:
                 continue
             n_after, nf_after, last_after, lastf_after, n_back = since.get(fid, (0, 0, None, None, 0))
             if n_back:
