@@ -15,6 +15,7 @@ import statsmodels.api as sm
 from tracker.estimation.local_level import (
     FilterState,
     LocalLevelParams,
+    advance_state,
     filter_local_level,
     fit_local_level,
     smooth_hindsight,
@@ -239,6 +240,28 @@ def test_two_chunks_equal_one_pass(factor, split):
     assert b.end_state.to_dict() == full.end_state.to_dict()
 
 
+@pytest.mark.parametrize("case", ["whole", "resumed", "last_missing", "all_missing", "one_row"])
+def test_advance_state_is_the_filters_end_state(factor, case):
+    # advance_state (end state only, for the daily extras) against filter_local_level's
+    # end_state and its last filtered premium
+    y, h = factor
+    y = y.copy()
+    p = LocalLevelParams(q=4e-9, c=1.3)
+    state = None
+    if case == "last_missing":
+        y[-3:] = np.nan
+    elif case == "all_missing":
+        y[:] = np.nan
+    elif case in ("resumed", "one_row"):
+        state = filter_local_level(p, y[:2000], h[:2000]).end_state
+        y, h = (y[2000:2001], h[2000:2001]) if case == "one_row" else (y[2000:], h[2000:])
+    flt = filter_local_level(p, y, h, state=state)
+    end = advance_state(p, y, h, state=state)
+    assert end.to_dict() == flt.end_state.to_dict()
+    last = float("nan") if end.diffuse else end.mean
+    np.testing.assert_equal(last, flt.mean[-1])
+
+
 def test_state_round_trips_json_and_resumes(factor):
     y, h = factor
     p = LocalLevelParams(q=4e-9, c=1.3)
@@ -311,9 +334,22 @@ def test_constant_premium_is_reported_as_q_zero():
     assert weak.status == "ok" and weak.params.q == 0.0
 
 
-def test_filter_speed_for_15000_rows():
-    # A guard, not a benchmark: one pass over 15,000 rows is a few milliseconds.
-    y, h = _factor_like(seed=1, n=15000)
-    t0 = time.perf_counter()
-    filter_local_level(LocalLevelParams(q=1e-9, c=1.0), y, h)
-    assert time.perf_counter() - t0 < 1.0
+def test_compiled_pass_matches_the_interpreted_loop(factor):
+    # the compiled prediction loop (used from jit.MIN_ROWS rows on) against the same
+    # recursion run by the interpreter, with missing rows and zero-variance rows inside
+    from tracker.estimation import jit, local_level
+
+    y, h = factor
+    y = y.copy()
+    y[100:140] = np.nan
+    R = 1.3 * h
+    valid = np.isfinite(y) & np.isfinite(R) & (R > 0)
+    assert y.size >= jit.MIN_ROWS
+    fn = local_level._compiled_loop()
+    assert fn is not None                                  # numba is a declared dependency
+    out = [np.empty(y.size) for _ in range(4)]
+    end_c = fn(4e-9, R, y, valid, 0.001, 1e-4, out[0], out[1])
+    end_i = local_level._predict_loop(4e-9, R, y, valid, 0.001, 1e-4, out[2], out[3])
+    np.testing.assert_array_equal(out[0], out[2])
+    np.testing.assert_array_equal(out[1], out[3])
+    assert end_c == pytest.approx(end_i, rel=1e-15)

@@ -49,11 +49,12 @@ def test_loglik_matches_the_published_fedfunds_value():
     assert ll_es[0] == pytest.approx(ll[0], rel=1e-12)
 
 
-def test_smoothed_probabilities_match_statsmodels_at_fixed_parameters():
+@pytest.mark.parametrize("compiled", [True, False], ids=["compiled", "numpy"])
+def test_smoothed_probabilities_match_statsmodels_at_fixed_parameters(compiled):
     y, _ = _simulate(1, 3000)
     mod = MarkovRegression(y * 100, k_regimes=2, trend="c", switching_variance=True)
     means, variances, trans = regime_moments(mod, mod.start_params)
-    gamma, xi, ll = em.e_step(y * 100, means[None], variances[None], trans[None])
+    gamma, xi, ll = em.e_step(y * 100, means[None], variances[None], trans[None], compiled=compiled)
     res = mod.smooth(mod.start_params)
     np.testing.assert_allclose(gamma[0], res.smoothed_marginal_probabilities, atol=1e-10)
     assert ll[0] == pytest.approx(res.llf, rel=1e-12)
@@ -61,6 +62,28 @@ def test_smoothed_probabilities_match_statsmodels_at_fixed_parameters():
     # indexed [S_t, S_{t-1}, t]; at t = 0 the pair is with the unobserved S_{-1}
     joint = np.asarray(res.smoothed_joint_probabilities)
     np.testing.assert_allclose(xi[0], joint[:, :, 1:].sum(axis=2).T, rtol=1e-8)
+
+
+def test_compiled_e_step_matches_the_numpy_twin():
+    # tracker.estimation.regime_em_compiled (row-by-row, scaled) against the blocked numpy
+    # products, several starts at once, on a long and a short series (the short one below
+    # the length where the service switches to the compiled kernel)
+    from tracker.estimation import regime_em_compiled
+
+    assert regime_em_compiled.kernel() is not None        # numba is a declared dependency
+    for t_len, seed in ((5000, 4), (120, 5)):
+        y, _ = _simulate(seed, t_len)
+        y = y * 100
+        rng = np.random.default_rng(seed)
+        means = np.mean(y) + 0.2 * rng.standard_normal((4, 2))
+        variances = np.var(y) * rng.uniform(0.2, 3.0, (4, 2))
+        stay = rng.uniform(0.8, 0.999, (4, 2))
+        trans = np.stack([np.array([[a, 1 - a], [1 - b, b]]) for a, b in stay])
+        g0, x0, l0 = em.e_step(y, means, variances, trans, compiled=False)
+        g1, x1, l1 = regime_em_compiled.e_step(y, means, variances, trans, em.stationary_batch(trans))
+        np.testing.assert_allclose(g1, g0, rtol=1e-9, atol=1e-12)
+        np.testing.assert_allclose(x1, x0, rtol=1e-9)
+        np.testing.assert_allclose(l1, l0, rtol=1e-11)
 
 
 def test_blocked_products_match_a_plain_recursion():
@@ -150,7 +173,8 @@ def test_model_engines_agree():
     np.testing.assert_allclose(a.params.transition, b.params.transition, atol=1e-3)
 
 
-def test_near_absorbing_chain_on_a_long_series_stays_finite():
+@pytest.mark.parametrize("compiled", [True, False], ids=["compiled", "numpy"])
+def test_near_absorbing_chain_on_a_long_series_stays_finite(compiled):
     # Regression (found in review): with transition probabilities at the EM's floor
     # (1e-8) and data that alternate between very different regimes, unscaled block
     # products underflowed to zero on long series (T = 40,000: NaN log-likelihood).
@@ -159,7 +183,7 @@ def test_near_absorbing_chain_on_a_long_series_stays_finite():
     y = np.where(np.arange(t_len) % 2 == 0, 0.0, 30.0)
     means, variances = np.array([[0.0, 0.0]]), np.array([[1e-4, 100.0]])
     trans = np.array([[[1 - 1e-8, 1e-8], [1e-8, 1 - 1e-8]]])
-    gamma, xi, ll = em.e_step(y, means, variances, trans)
+    gamma, xi, ll = em.e_step(y, means, variances, trans, compiled=compiled)
     assert np.all(np.isfinite(gamma)) and np.all(np.isfinite(xi)) and np.isfinite(ll[0])
     from tracker.estimation.markov_regimes import forward_filter_loop, normal_logpdf_matrix
 

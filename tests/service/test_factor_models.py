@@ -63,3 +63,27 @@ def test_regime_premium_shares_the_local_level_q_by_default():
     ll_free = {f.model: f.loglik for f in out_free.fits}
     # the restricted (shared-q) maximum cannot beat the free one
     assert ll["regime_premium"] <= ll_free["regime_premium"] + 1e-6
+
+
+def test_vectorised_per_date_warnings_equal_the_row_by_row_rules():
+    # tracker.service.factor_warnings.per_date_warnings (conditions on whole arrays, rules
+    # called where they fire) against per_date_warnings_loop (every rule on every row),
+    # with missing returns, a block start inside the history and thresholds that make
+    # every per-date rule fire somewhere (loose limits: IMPLAUSIBLE_SR, REGIME_AMBIG)
+    from tracker.estimation.warning_rules import WarningThresholds
+    from tracker.service.factor_warnings import per_date_warnings, per_date_warnings_loop
+
+    y = _regime_series(5, 2500)
+    y[[7, 300, 301, 1800]] = np.nan
+    y[1200] = 0.2                                    # an outlier
+    dates = np.datetime64("2001-01-01") + np.arange(len(y))
+    out = run_factor(FactorTask("X", "daily", dates, y, SETTINGS, refit=True))
+    loose = WarningThresholds(implausible_sharpe=0.5, implausible_min_years=1.0,
+                              regime_ambiguous_prob=0.9)
+    for th in (WarningThresholds(), loose):
+        for first, n_prior, end in ((0, 0, None), (900, 40, 2000), (2499, 0, None)):
+            fast = per_date_warnings(out, "daily", first, n_prior, th, end_index=end)
+            slow = per_date_warnings_loop(out, "daily", first, n_prior, th, end_index=end)
+            assert fast == slow
+    codes = {r["code"] for r in per_date_warnings(out, "daily", 0, 0, loose)}
+    assert codes == {"NOISE", "IMPLAUSIBLE_SR", "REGIME_AMBIG", "OUTLIER"}

@@ -3,8 +3,8 @@
 A likelihood evaluation is a pass over the whole history, and the fit needs dozens of
 them; the interpreted kernel (:func:`tracker.estimation.kim_filter._kim_pass_two`) costs
 about 2 us per row. This is the same recursion, operation for operation, returning only
-the summed log-likelihood, compiled once per machine (numba's on-disk cache) and used by
-``fit_kim`` for long series. The interpreted kernel stays the reference twin
+the summed log-likelihood, compiled on first use (:mod:`tracker.estimation.jit`) and
+used by ``fit_kim`` for long series. The interpreted kernel stays the reference twin
 (tests/estimation/test_kim_filter.py) and produces every stored filter output.
 
 If numba cannot be imported the fit uses the interpreted kernel: the same numbers,
@@ -16,10 +16,10 @@ import math
 
 import numpy as np
 
+from tracker.estimation import jit
+
 _LOG_2PI = math.log(2.0 * math.pi)
-# Below this many rows the interpreted kernel is used (compiling costs about a second
-# once per process when the on-disk cache is cold; short passes are cheap anyway).
-MIN_ROWS = 400
+MIN_ROWS = jit.MIN_ROWS
 
 
 def _loglik_two(q, c0, c1, m0, m1, p00, p01, p10, p11, pr0, pr1, a0, a1, P0, P1, diffuse,
@@ -108,32 +108,11 @@ def _loglik_two(q, c0, c1, m0, m1, p00, p01, p10, p11, pr0, pr1, a0, a1, P0, P1,
     return total
 
 
-_compiled = None          # the jitted function, made on first use (importing numba takes ~1 s,
-_tried = False            # which the interface and short advances never need to pay)
-
-
 def compiled():
     """The compiled kernel, or None when numba is not installed."""
-    global _compiled, _tried
-    if not _tried:
-        _tried = True
-        try:
-            from numba import njit
-        except ImportError:  # pragma: no cover - numba is a declared dependency
-            return None
-        probe = (1e-8, 1.0, 2.0, 0.0, 0.0, 0.9, 0.1, 0.1, 0.9, 0.5, 0.5, 0.0, 0.0, 0.0, 0.0, True,
-                 np.zeros(3), np.ones(3), np.ones(3, dtype=np.bool_))
-        # the on-disk cache needs a writable folder (beside this file or the user's cache);
-        # without one, compile in memory for this process
-        for cache in (True, False):
-            try:
-                fn = njit(cache=cache, nogil=True)(_loglik_two)
-                fn(*probe)
-            except Exception:  # pragma: no cover - depends on the machine's folders
-                continue
-            _compiled = fn
-            break
-    return _compiled
+    probe = (1e-8, 1.0, 2.0, 0.0, 0.0, 0.9, 0.1, 0.1, 0.9, 0.5, 0.5, 0.0, 0.0, 0.0, 0.0, True,
+             np.zeros(3), np.ones(3), np.ones(3, dtype=np.bool_))
+    return jit.compiled(_loglik_two, probe)
 
 
 def loglik_two(params, y: np.ndarray, h: np.ndarray, valid: np.ndarray, state) -> float:

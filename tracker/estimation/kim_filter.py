@@ -102,11 +102,14 @@ class KimParams:
     transition: tuple[tuple[float, ...], ...]
 
     def __post_init__(self) -> None:
+        # plain Python: a daily update makes one of these per factor, and numpy's checks
+        # cost more than the filter step it parametrises
         k = len(self.c)
-        p = np.asarray(self.transition, dtype=float)
-        if len(self.m) != k or p.shape != (k, k):
+        if len(self.m) != k or len(self.transition) != k or any(len(r) != k for r in self.transition):
             raise ValueError("c, m and transition must describe the same number of regimes")
-        if np.any(p < 0.0) or not np.allclose(p.sum(axis=1), 1.0, atol=1e-8):
+        # rows sum to 1 within numpy allclose's default tolerance (atol 1e-8, rtol 1e-5)
+        if (any(v < 0.0 for r in self.transition for v in r)
+                or not all(abs(math.fsum(r) - 1.0) <= 1e-8 + 1e-5 for r in self.transition)):
             raise ValueError("transition must be row-stochastic: P[i][j] = P(S_t=j | S_t-1=i)")
         if not (self.q >= 0.0 and all(v > 0.0 for v in self.c)):
             raise ValueError("need q >= 0 and every c[k] > 0")

@@ -30,6 +30,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from tracker.estimation import jit
+
 _LOG_2PI = math.log(2.0 * math.pi)
 # Steps between rescalings of the running products in :func:`_prefix`.
 _RESCALE_EVERY = 8
@@ -122,12 +124,17 @@ def _log_densities(y, means, variances):
     return -0.5 * ((_LOG_2PI + np.log(variances))[:, None, :] + r * r / variances[:, None, :])
 
 
-def e_step(y: np.ndarray, means: np.ndarray, variances: np.ndarray, transition: np.ndarray):
+def e_step(y: np.ndarray, means: np.ndarray, variances: np.ndarray, transition: np.ndarray,
+           *, compiled: bool = True):
     """Smoothed probabilities, summed pairwise probabilities and log-likelihoods.
 
     Parameters
     ----------
     y : (T,) finite observations; means, variances (S, K); transition (S, K, K).
+    compiled : bool
+        For series of at least ``jit.MIN_ROWS`` rows, use the compiled row-by-row
+        recursion (:mod:`tracker.estimation.regime_em_compiled`); False, or without
+        numba, the blocked numpy products below, its reference twin.
 
     Returns
     -------
@@ -136,6 +143,13 @@ def e_step(y: np.ndarray, means: np.ndarray, variances: np.ndarray, transition: 
     loglik : (S,) exact log-likelihood with the chain started at its stationary law
     """
     y = np.asarray(y, float)
+    if compiled and y.size >= jit.MIN_ROWS:
+        from tracker.estimation import regime_em_compiled
+
+        out = regime_em_compiled.e_step(y, means, variances, transition,
+                                        stationary_batch(np.asarray(transition, float)))
+        if out is not None:
+            return out
     t_len = y.size
     p = np.asarray(transition, float)
     log_d = _log_densities(y, means, variances)                   # (S, T, K)
@@ -167,6 +181,12 @@ def exact_loglik(y, means, variances, transition) -> np.ndarray:
     """Log-likelihood per start (forward pass only)."""
     y = np.asarray(y, float)
     p = np.asarray(transition, float)
+    if y.size >= jit.MIN_ROWS:
+        from tracker.estimation import regime_em_compiled
+
+        out = regime_em_compiled.e_step(y, means, variances, p, stationary_batch(p))
+        if out is not None:
+            return out[2]
     log_d = _log_densities(y, np.asarray(means, float), np.asarray(variances, float))
     mx = log_d.max(axis=2)
     lik = np.exp(log_d - mx[:, :, None])

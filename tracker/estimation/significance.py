@@ -26,6 +26,7 @@ Methods and sources
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -213,6 +214,8 @@ def newey_west_mean(
 
 def two_sided_p_value(t_stat):
     """Two-sided standard-normal p-value 2 (1 - Phi(|t|)); vectorised."""
+    if np.ndim(t_stat) == 0:         # once per factor per update: erfc(|t| / sqrt 2), as ndtr
+        return math.erfc(abs(float(t_stat)) / math.sqrt(2.0))
     p = 2.0 * stats.norm.sf(np.abs(np.asarray(t_stat, dtype=float)))
     return float(p) if np.ndim(p) == 0 else p
 
@@ -417,6 +420,9 @@ def years_for_t_stat(sharpe_annual, t_target: float = 2.0):
     With iid returns t = SR_annual sqrt(years), so SR 0.3 needs about 44 years
     for t = 2. Vectorised; SR = 0 gives ``inf``.
     """
+    if np.ndim(sharpe_annual) == 0:          # the per-date rules call this once a row
+        sr = abs(float(sharpe_annual))
+        return math.inf if sr == 0.0 else (t_target / sr) ** 2
     sr = np.abs(np.asarray(sharpe_annual, dtype=float))
     with np.errstate(divide="ignore"):
         out = (t_target / sr) ** 2

@@ -484,6 +484,11 @@ def _two_sided_z(level: float) -> float:
     return float(stats.norm.ppf(0.5 + level / 2.0))
 
 
+def noise_band_z(th: WarningThresholds) -> float:
+    """The two-sided z of the NOISE rule's central band (``noise_band_level``)."""
+    return _two_sided_z(th.noise_band_level)
+
+
 def rule_noise(premium, premium_sd, th: WarningThresholds, volatility=None,
                periods_per_year=None) -> Warning | None:
     """NOISE: |mu_{t|t}| < k sd, or the central band at the chosen level contains 0.
@@ -501,7 +506,7 @@ def rule_noise(premium, premium_sd, th: WarningThresholds, volatility=None,
     if not (_finite(premium) and _finite(premium_sd)) or premium_sd <= 0:
         return None
     ratio = abs(premium) / premium_sd
-    z_band = _two_sided_z(th.noise_band_level)
+    z_band = noise_band_z(th)
     limit = max(th.noise_sd_multiple, z_band)
     if not ratio < limit:
         return None

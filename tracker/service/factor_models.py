@@ -27,6 +27,7 @@ from tracker.estimation.kim_filter import KimParams, KimState, filter_kim, fit_k
 from tracker.estimation.local_level import (
     FilterState,
     LocalLevelParams,
+    advance_state,
     filter_local_level,
     fit_local_level,
     smooth_hindsight,
@@ -387,9 +388,9 @@ def _latest_extras(ll_params: LocalLevelParams | None, y: np.ndarray, h: np.ndar
     for key, scale in ((STATE_Q_HALF, 0.5), (STATE_Q_DOUBLE, 2.0)):
         p = LocalLevelParams(q=ll_params.q * scale, c=ll_params.c)
         st = None if fresh else FilterState.from_dict(states[key])
-        flt = filter_local_level(p, y, h, state=st)
-        states[key] = flt.end_state.to_dict()
-        out["q_half" if scale < 1 else "q_double"] = float(flt.mean[-1])
+        end = advance_state(p, y, h, state=st)          # the last filtered premium is its mean
+        states[key] = end.to_dict()
+        out["q_half" if scale < 1 else "q_double"] = float("nan") if end.diffuse else end.mean
     tail = None if fresh else states[STATE_TAIL]
     prior = FilterState() if tail is None else FilterState.from_dict(tail["prior"])
     ty = np.concatenate([_floats(tail["y"]) if tail else np.empty(0), y])
@@ -397,7 +398,7 @@ def _latest_extras(ll_params: LocalLevelParams | None, y: np.ndarray, h: np.ndar
     drop = max(0, ty.size - HINDSIGHT_ROWS)
     if drop:
         # the rows leaving the tail only move the filter state before it
-        prior = filter_local_level(ll_params, ty[:drop], th[:drop], state=prior).end_state
+        prior = advance_state(ll_params, ty[:drop], th[:drop], state=prior)
         ty, th = ty[drop:], th[drop:]
     states[STATE_TAIL] = {"prior": prior.to_dict(), "y": _nullable(ty), "h": _nullable(th)}
     out["hindsight"] = smooth_hindsight(ll_params, ty, th, prior=prior).mean
