@@ -358,13 +358,15 @@ def _regime_columns(dates, filtered, predicted) -> dict:
         "n_regimes": np.full(f.shape[0], f.shape[1], dtype=np.int64),
         "regime": np.argmax(f, axis=1).astype(int),
         "probability": np.max(f, axis=1),
-        "filtered": [list(map(float, r)) for r in f],
-        "predicted": [list(map(float, r)) for r in p],
+        "filtered": f,                     # (n, K): list columns (FrameBatch)
+        "predicted": p,
     }
 
 
 def regime_frame(subject: str, dates, filtered, predicted, vintage: int, fit_id) -> pd.DataFrame:
     cols = _regime_columns(dates, filtered, predicted)
+    for key in ("filtered", "predicted"):
+        cols[key] = [list(map(float, r)) for r in cols[key]]
     return pd.DataFrame({"subject_id": subject, "date": cols.pop("date"), "vintage": vintage,
                          "fit_id": fit_id, **cols})
 
@@ -397,9 +399,14 @@ def _latest_codes(plans, outputs, warn_frame) -> dict:
     codes = {fid: set() for fid in latest}
     if warn_frame is not None and len(warn_frame):
         days = warn_frame["date"].to_numpy().astype("datetime64[D]")
-        for fid, day, code in zip(warn_frame["subject_id"].to_numpy(), days, warn_frame["code"].to_numpy()):
-            if fid in latest and day == latest[fid]:
-                codes[fid].add(str(code))
+        subjects = warn_frame["subject_id"].to_numpy()
+        if latest:
+            which, uniq = pd.factorize(subjects)
+            newest = np.array([latest.get(u, np.datetime64("NaT")) for u in uniq], dtype="datetime64[D]")
+            on_latest = np.flatnonzero(days == newest[which])   # NaT (a factor not stored) never equals
+            code_col = warn_frame["code"].to_numpy()
+            for i in on_latest.tolist():
+                codes[subjects[i]].add(str(code_col[i]))
     return codes
 
 

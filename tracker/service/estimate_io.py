@@ -273,8 +273,12 @@ class FrameBatch:
     """Rows of many factors for one table, inserted as few frames (``limit`` rows each).
 
     ``add(const, cols)``: ``const`` holds the values shared by the rows (ids, vintage,
-    fit id), ``cols`` aligned arrays or lists. A backfill of long histories flushes every
-    ``limit`` rows so its frames stay small; a day's update of every factor is one insert.
+    fit id), ``cols`` aligned 1-D arrays, or 2-D arrays for list columns (one row per
+    table row; the rows may differ in width between ``add`` calls). A backfill of long
+    histories flushes every ``limit`` rows so its frames stay small; a day's update of
+    every factor is one insert. The frame is an Arrow table built from the arrays without
+    a Python object per value (a refit writes millions of rows); NaN becomes NULL, as
+    DuckDB reads NaN in a pandas float column.
     """
 
     def __init__(self, con, query: str, limit: int = 400_000) -> None:
@@ -297,23 +301,38 @@ class FrameBatch:
             self.written += insert_frame(self.con, self.query, self._frame())
         self.parts, self.pending = [], 0
 
-    def _frame(self) -> pd.DataFrame:
+    def _frame(self):
+        import pyarrow as pa
+
         first_const, first_cols, _ = self.parts[0]
-        idx = np.repeat(np.arange(len(self.parts)), [n for _, _, n in self.parts])
+        idx = pa.array(np.repeat(np.arange(len(self.parts)), [n for _, _, n in self.parts]))
         data = {}
         for key in first_const:
             values = [c[key] for c, _, _ in self.parts]
             if all(v is None or (isinstance(v, (int, np.integer)) and not isinstance(v, bool)) for v in values):
-                data[key] = pd.array(values, dtype="Int64")[idx]
+                data[key] = pa.array(values, type=pa.int64()).take(idx)
             else:
-                data[key] = np.array(values, dtype=object)[idx]
+                data[key] = pa.array(values).take(idx)
         for key, sample in first_cols.items():
-            chunks = [cols[key] for _, cols, _ in self.parts]
-            data[key] = [v for ch in chunks for v in ch] if isinstance(sample, list) else np.concatenate(chunks)
-        return pd.DataFrame(data)
+            chunks = [np.asarray(cols[key]) for _, cols, _ in self.parts]
+            if np.ndim(sample) == 2:
+                data[key] = _list_array(chunks)
+            else:
+                data[key] = pa.array(np.concatenate(chunks), from_pandas=True)
+        return pa.table(data)
 
 
-def insert_frame(con, query: str, frame: pd.DataFrame) -> int:
+def _list_array(chunks: list[np.ndarray]):
+    """A LIST column from 2-D float arrays, one list per row (widths may differ by chunk)."""
+    import pyarrow as pa
+
+    widths = np.concatenate([np.full(c.shape[0], c.shape[1], dtype=np.int64) for c in chunks])
+    offsets = np.concatenate(([0], np.cumsum(widths))).astype(np.int32)
+    values = np.concatenate([np.ascontiguousarray(c, dtype=float).ravel() for c in chunks])
+    return pa.ListArray.from_arrays(pa.array(offsets), pa.array(values, from_pandas=True))
+
+
+def insert_frame(con, query: str, frame) -> int:
     if frame is None or not len(frame):
         return 0
     con.register("incoming_frame", frame)

@@ -166,6 +166,7 @@ def warning_frames(config, inp, plans, outputs):
     fast = {f: prep.view.errors for f, prep in prepared.items() if prep.view is not None}
     diags = batch_misfit_diagnostics(fast, th)
     rows: list[dict] = []
+    vintages: list[tuple[int, int]] = []
     for plan in plans:
         out = outputs.get(plan.factor_id)
         if out is None:
@@ -196,14 +197,41 @@ def warning_frames(config, inp, plans, outputs):
         else:
             last_rows = latest_warnings(out, ctx, th, *prep.full)
         last_date = out.dates[-1]
-        found = [r for r in found if r["date"] != last_date] + last_rows
-        for r in found:
-            r["vintage"] = plan.vintage
+        # per-date rows come in date order (per_date_warnings): the last date's are at the end
+        while found and found[-1]["date"] == last_date:
+            found.pop()
         rows.extend(found)
-    frame = pd.DataFrame(rows) if rows else None
-    if frame is not None:
-        frame["date"] = pd.to_datetime(frame["date"])
-    return frame, prepared
+        rows.extend(last_rows)
+        vintages.append((len(rows), plan.vintage))
+    return _frame_of(rows, vintages), prepared
+
+
+def _frame_of(rows: list[dict], vintages: list[tuple[int, int]]):
+    """The warnings as an Arrow table, built column by column (a refit stores ~50 rows a
+    factor-year; pandas' per-value string conversion cost more than the rules).
+
+    ``vintages``: (end position in ``rows``, vintage) per plan, in order.
+    """
+    import pyarrow as pa
+
+    if not rows:
+        return None
+    ends = np.array([e for e, _ in vintages])
+    counts = np.diff(np.concatenate(([0], ends)))
+    # columns with few distinct values go in as dictionary arrays (a value per distinct
+    # code or factor, not per row); only the detail text is converted row by row
+    data = {"detail": pa.array([r["detail"] for r in rows], type=pa.string())}
+    for keys in (("subject_id",), ("code", "severity", "message", "source")):
+        which, uniq = pd.factorize(np.array([r[keys[0]] for r in rows], dtype=object))
+        first = np.unique(which, return_index=True)[1]
+        for k in keys:
+            values = pa.array([rows[i][k] for i in first], type=pa.string())
+            data[k] = pa.DictionaryArray.from_arrays(pa.array(which.astype(np.int32)), values)
+    data["date"] = pa.array(np.array([r["date"] for r in rows], dtype="datetime64[D]"))
+    for k in ("value", "threshold"):
+        data[k] = pa.array(np.array([r[k] for r in rows], dtype=float), from_pandas=True)
+    data["vintage"] = pa.array(np.repeat([v for _, v in vintages], counts).astype(np.int64))
+    return pa.table(data)
 
 
 def _fits_of(inp: Inputs, fid: str) -> dict:
