@@ -257,8 +257,11 @@ def test_compiled_likelihood_equals_the_interpreted_kernel(factor, prior):
         ll = _kim_pass_two(par, r, h, valid, st)[3]
         want = math.fsum(v for v in ll if v == v)
         got = kim_compiled.loglik_two(par, r, h, valid, st)
-        interpreted = kim_compiled._loglik_two(
-            par.q, *par.c, *par.m, *TWO.ravel(), *st.prob, *st.mean, *st.var, st.diffuse,
-            r, h, valid)
         assert got == pytest.approx(want, rel=1e-12)
-        assert interpreted == pytest.approx(want, rel=1e-12)
+        # every output of the compiled pass, row by row, and the end state
+        ref = _kim_pass_two(par, r, h, valid, st)
+        fast = kim_compiled.pass_two(par, r, h, valid, st)
+        for a, b in zip(fast[:4], ref[:4]):
+            np.testing.assert_allclose(np.asarray(a), np.asarray(b), rtol=1e-12, atol=0)
+        np.testing.assert_allclose(np.concatenate(fast[4][:3]), np.concatenate(ref[4][:3]), rtol=1e-12)
+        assert fast[4][3] == ref[4][3]

@@ -466,8 +466,13 @@ def _collapse(w: list, aij: list, Pij: list, prob: list, k: int):
 
 
 def _run(params: KimParams, y, h, valid, state: KimState):
-    kernel = _kim_pass_two if params.k_regimes == 2 else _kim_pass
-    return kernel(params, y, h, valid, state)
+    if params.k_regimes == 2:
+        if y.size >= kim_compiled.MIN_ROWS:       # a whole history: the compiled twin
+            out = kim_compiled.pass_two(params, y, h, valid, state)
+            if out is not None:
+                return out[:5]
+        return _kim_pass_two(params, y, h, valid, state)
+    return _kim_pass(params, y, h, valid, state)
 
 
 def _predictive(prob, mean, var, params: KimParams, h_ahead):

@@ -59,7 +59,7 @@ from tracker.service.estimate_latest import (
     thresholds,
     warning_frames,
 )
-from tracker.service.executor import Executor, SerialExecutor, executor_for
+from tracker.service.executor import Executor, SerialExecutor, executor_for, one_blas_thread
 from tracker.service.factor_models import (
     FACTOR_MODELS,
     HINDSIGHT_ROWS,
@@ -315,9 +315,17 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
     outputs: dict[str, FactorOutput] = {}
     if progress:
         progress(0, total, "estimating")
-    runner = executor or (executor_for(config) if len(heavy) > 1 else SerialExecutor())
     th = _thresholds(config)
-    for out in runner.map(run_factor_with_warnings, [(t, th) for t in heavy]):
+    # a due market fit goes to the workers with the factors' fits, first (the longest task),
+    # so it runs beside them rather than after them on one core
+    market_task = market_mod.fit_task(inp, config, cold=cold) if heavy else None
+    work = ([market_task] if market_task is not None else []) + [(t, th) for t in heavy]
+    runner = executor or (executor_for(config) if len(work) > 1 else SerialExecutor())
+    market_fit = None
+    for out in runner.map(run_refit_item, work):
+        if not isinstance(out, FactorOutput):
+            market_fit = out
+            continue
         outputs[out.factor_id] = out
         done += 1
         if progress:
@@ -334,7 +342,7 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
             observer(out)
 
     market = market_mod.run_market(inp, config, cold=cold, refit_all=refit is not None and not refit,
-                                   rederive=any(p.kind == "rederive" for p in plans))
+                                   rederive=any(p.kind == "rederive" for p in plans), fit=market_fit)
     lap("market")
     if not plans and market is None:
         return RunSummary(kinds={}, timings=timings)
@@ -348,6 +356,15 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
     if market is not None and market.emitted:
         kinds[market_mod.MARKET] = market.kind
     return RunSummary(kinds=kinds, rows_written=rows, timings=timings)
+
+
+def run_refit_item(item):
+    """Top-level (picklable) worker task of a refit: a factor's ``(task, thresholds)`` or the
+    market's :class:`market.MarketFitTask`, with BLAS on one thread (``one_blas_thread``)."""
+    with one_blas_thread():
+        if isinstance(item, market_mod.MarketFitTask):
+            return market_mod.run_fit_task(item)
+        return run_factor_with_warnings(item)
 
 
 def _regime_columns(dates, filtered, predicted) -> dict:

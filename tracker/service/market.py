@@ -25,6 +25,7 @@ import pandas as pd
 from tracker.estimation.market_regime import MarketRegimeModel, MarketRegimeParams, market_filter
 from tracker.estimation.markov_regimes import RegimeFilterState
 from tracker.service.estimate_io import BOOK_KEY, Book
+from tracker.service.executor import one_blas_thread
 from tracker.service.factor_models import dumps
 from tracker.store.sqlfiles import sql
 
@@ -149,7 +150,47 @@ def read_market_input(con, inp, *, refit_all: bool, rederive: bool, config=None)
     return MarketInput(tuple(columns), refit, x)
 
 
-def run_market(inp, config, *, refit_all: bool, rederive: bool, cold: bool = False) -> MarketOutput | None:
+@dataclass(frozen=True)
+class MarketFitTask:
+    """A market fit as a picklable task, so a refit runs it in a worker beside the factors'
+    fits instead of after them (:func:`run_fit_task`)."""
+
+    x: np.ndarray                     # (T, N) complete rows, decimal
+    columns: tuple[str, ...]
+    previous: MarketRegimeParams | None
+    warm_start: bool
+    states: tuple[int, ...]
+    n_seeds: int
+    seed: int
+
+
+def fit_task(inp, config, *, cold: bool = False) -> MarketFitTask | None:
+    """The market fit this run needs (None when the market only advances or has no rows)."""
+    mk = inp.market
+    if mk is None or not mk.refit or mk.matrix.empty:
+        return None
+    m = config.models
+    prev_params = _previous(inp)
+    same_columns = prev_params is not None and tuple(prev_params.columns or ()) == tuple(mk.columns)
+    # a refit of a store that has a market fit over the same factors starts from it
+    # (see MarketRegimeModel.fit); a first fit, or new factors, is cold
+    return MarketFitTask(
+        mk.matrix.to_numpy(), tuple(mk.columns), prev_params if same_columns else None,
+        same_columns and not cold,
+        tuple(range(m.market_states_min, m.market_states_max + 1)) if m.market_states_min >= 2 else (2,),
+        m.market_seeds, m.seed)
+
+
+def run_fit_task(task: MarketFitTask):
+    """Top-level (picklable) worker: fit the market regime model."""
+    model = MarketRegimeModel(states=task.states, n_seeds=task.n_seeds, seed=task.seed)
+    return model.fit(task.x, previous=task.previous, columns=task.columns, warm_start=task.warm_start)
+
+
+def run_market(inp, config, *, refit_all: bool, rederive: bool, cold: bool = False,
+               fit=None) -> MarketOutput | None:
+    """The market's output for this run; ``fit`` is the result of :func:`run_fit_task` when
+    the caller already ran the fit (in a worker), else a due fit is run here."""
     mk = inp.market
     if mk is None:
         return None
@@ -159,7 +200,6 @@ def run_market(inp, config, *, refit_all: bool, rederive: bool, cold: bool = Fal
         return None
     dates = x.index.to_numpy().astype("datetime64[D]")
     state_row = inp.states.get((MARKET, MODEL_MARKET))
-    fit_row = inp.fits.get((MARKET, MODEL_MARKET))
     vintage = int(inp.vintages.get(MARKET, 0))
     prev_params = _previous(inp)
     same_columns = prev_params is not None and tuple(prev_params.columns or ()) == tuple(columns)
@@ -167,15 +207,9 @@ def run_market(inp, config, *, refit_all: bool, rederive: bool, cold: bool = Fal
     if state_row is not None:
         through = np.datetime64(pd.Timestamp(state_row["through_date"]).date(), "D")
     if mk.refit:
-        m = config.models
-        model = MarketRegimeModel(
-            states=tuple(range(m.market_states_min, m.market_states_max + 1)) if m.market_states_min >= 2 else (2,),
-            n_seeds=m.market_seeds, seed=m.seed,
-        )
-        # a refit of a store that has a market fit over the same factors starts from it
-        # (see MarketRegimeModel.fit); a first fit, or new factors, is cold
-        fit = model.fit(x.to_numpy(), previous=prev_params if same_columns else None, columns=tuple(columns),
-                        warm_start=same_columns and not cold)
+        if fit is None:
+            with one_blas_thread():                # as in a refit's workers
+                fit = run_fit_task(fit_task(inp, config, cold=cold))
         if fit.status != "ok" or fit.filtered is None:
             return MarketOutput("fit", tuple(columns), fit, {}, {}, dates[:0], np.empty((0, 0)),
                                 np.empty((0, 0)), dates[-1], vintage, None)
