@@ -18,7 +18,7 @@ from tracker.service.bench_data import make_panel
 
 CELL_FIELDS = {"factors", "days", "state", "load_s", "rows_loaded", "full_refit", "warm_refit", "naive",
                "borrowed_state", "sample_refit", "incremental", "ui", "peak_rss_mb", "peak_children_rss_mb",
-               "seconds", "store_rows", "store_mb"}
+               "build_peak_rss_mb", "build_peak_children_rss_mb", "seconds", "store_rows", "store_mb"}
 UPDATE_FIELDS = {"wall_s", "tasks", "kinds", "market", "phases_s", "model_cpu_s", "rows_written", "skipped"}
 INCREMENTAL_FIELDS = {"new_days", "new_rows", "ingest_s", "ingest_outcomes", "plans", "advance_s",
                       "advance_update", "due_s", "due_update", "advance_end_to_end_s", "end_to_end_s"}

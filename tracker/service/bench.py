@@ -28,8 +28,13 @@ rows through ``process_inbox`` into a store with the factors declared.
 JSON (``--json PATH``): ``{"version", "created", "machine", "options", "cells": [...],
 "ingest", "targets": [...]}``; each cell: ``factors, days, state ('refit' | 'borrowed'),
 load_s, rows_loaded, full_refit, warm_refit, naive, borrowed_state, sample_refit,
-incremental: [...], ui, peak_rss_mb, peak_children_rss_mb, seconds``; fields of the
-sub-objects are in :func:`_run_cell` and below. Nothing is extrapolated silently: a
+incremental: [...], ui, peak_rss_mb, peak_children_rss_mb, build_peak_rss_mb,
+build_peak_children_rss_mb, seconds``. A cell runs in two processes: the build (load,
+then a real refit or the borrowed state) and the use (the incremental days, the sample
+refit, the UI), so the daily figures and ``peak_rss_mb`` are those of a process that,
+like the product's, did not build the store; ``build_peak_*`` is the build's (a product
+refit for 'refit' cells, the bench's own builder for 'borrowed' ones). Fields of the
+sub-objects are in :mod:`tracker.service.bench_cell`. Nothing is extrapolated silently: a
 number not measured in this run is null, and a projection says so in its field name.
 
 Scale-out: refits go through :func:`tracker.service.executor.executor_for`, i.e. the
@@ -148,7 +153,17 @@ def bench_command(args, echo=print) -> int:
             echo(f"cell {n} factors x {t} days ...")
             spec = {**opts, "n": n, "t": t, "ui_here": opts["ui"] and (n, t) == largest,
                     "folder": str(root / f"cell-{n}x{t}")}
-            cell = _isolated(_run_cell, spec, opts["in_process"])
+            cell = _isolated(_build_cell, spec, opts["in_process"])
+            if "error" not in cell:
+                # the daily path in a fresh process, as the product runs it (the build's
+                # memory and heap are the bench's, not the product's)
+                used = _isolated(_use_cell, {**spec, "state": cell["state"]}, opts["in_process"])
+                if "error" in used:
+                    cell["error"] = used["error"]
+                cell["build_peak_rss_mb"] = cell.pop("peak_rss_mb")
+                cell["build_peak_children_rss_mb"] = cell.pop("peak_children_rss_mb", None)
+                cell["seconds"] += used.pop("seconds", 0.0)
+                cell.update(used)
             result["cells"].append(cell)
             echo(f"  done in {cell.get('seconds', float('nan')):.1f} s")
         if opts["ingest_rows"] > 0:
@@ -214,13 +229,23 @@ def _peak(out: dict) -> dict:
 # ---------------------------------------------------------------------- one cell
 
 
-def _run_cell(spec: dict) -> dict:
-    from tracker.service.bench_cell import run_cell
+def _build_cell(spec: dict) -> dict:
+    from tracker.service.bench_cell import build_cell
 
+    return _timed_phase(build_cell, spec)
+
+
+def _use_cell(spec: dict) -> dict:
+    from tracker.service.bench_cell import use_cell
+
+    return _timed_phase(use_cell, spec)
+
+
+def _timed_phase(fn, spec: dict) -> dict:
     t0 = time.perf_counter()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        out = run_cell(spec)
+        out = fn(spec)
     out["seconds"] = time.perf_counter() - t0
     return _peak(out)
 

@@ -54,7 +54,7 @@ def print_report(result: dict, echo) -> None:
         naive = c["naive"]["per_factor_s"] if c.get("naive") else None
         ratio = naive / per if naive and per else None
         speed = basis / one["end_to_end_s"] if basis and one else None
-        rss = max(c.get("peak_rss_mb") or 0, c.get("peak_children_rss_mb") or 0)
+        rss = product_peak_mb(c)
         echo(f"{c['factors']:>5} {c['days']:>6} {c['state']:>8} {_f(c.get('load_s')):>7} "
              f"{_f(basis, '.1f') + ('*' if how.startswith('projected') else ''):>9} {_f(per):>9} {_f(naive):>9} "
              f"{_f(ratio):>6} {_f(one and one['end_to_end_s'], '.3f'):>8} "
@@ -97,6 +97,17 @@ def print_report(result: dict, echo) -> None:
     echo(f"total {result.get('seconds', 0):.0f} s")
 
 
+def _build_peak(c: dict) -> float:
+    return max(c.get("build_peak_rss_mb") or 0, c.get("build_peak_children_rss_mb") or 0)
+
+
+def product_peak_mb(c: dict) -> float:
+    """Largest process of the product's own work in a cell: the daily updates, sample refit
+    and interface, and the build too when it was a real refit (not borrowed state)."""
+    peak = max(c.get("peak_rss_mb") or 0, c.get("peak_children_rss_mb") or 0)
+    return max(peak, _build_peak(c)) if c.get("state") == "refit" else peak
+
+
 def _phases(u: dict | None) -> str:
     if not u:
         return "-"
@@ -124,8 +135,11 @@ def targets(result: dict) -> list[dict]:
             ra = basis / one["advance_end_to_end_s"]
             extra = f", {ra:.0f}x for the advancing factors alone" if one.get("due_update") else ""
             parts.append(f"{c['factors']}x{c['days']}: {r:.0f}x ({how}{extra})")
-            verdicts.append(r >= INCREMENTAL_SPEEDUP)
-    out.append({"target": "incremental at least 100x faster than a full refit",
+            if c["factors"] >= 500:
+                # the target is stated for the 500-factor update; smaller cells are shown
+                # (their refit is short, so the update's fixed cost weighs more)
+                verdicts.append(r >= INCREMENTAL_SPEEDUP)
+    out.append({"target": "incremental at least 100x faster than a full refit (500 factors)",
                 "measured": "; ".join(parts) or "no refit measured",
                 "met": all(verdicts) if verdicts else None})
     by_n: dict[int, list[dict]] = {}
@@ -164,9 +178,12 @@ def targets(result: dict) -> list[dict]:
                 "measured": "; ".join(parts) or "no refit cell", "met": all(verdicts) if verdicts else None})
     mem = [c for c in cells if c["factors"] >= 500 and c["days"] >= 15000]
     if mem:
-        peak = max(max(c.get("peak_rss_mb") or 0, c.get("peak_children_rss_mb") or 0) for c in mem)
+        peak = max(product_peak_mb(c) for c in mem)
+        what = ("daily updates, sample refit and interface; the full refit was not run, the "
+                f"bench's borrowed-state builder peaked at {max(_build_peak(c) for c in mem):.0f} MB"
+                if mem[0]["state"] == "borrowed" else "full refit, daily updates and interface")
         out.append({"target": "under 2 GB peak memory for 500 x 15,000",
-                    "measured": f"{peak:.0f} MB (largest single process; state {mem[0]['state']})",
+                    "measured": f"{peak:.0f} MB (largest single process: {what})",
                     "met": peak < MEMORY_LIMIT_MB})
     else:
         out.append({"target": "under 2 GB peak memory for 500 x 15,000", "measured": "cell not run", "met": None})

@@ -87,7 +87,8 @@ def _filter_task(args) -> FactorOutput:
 
 
 def build_borrowed_state(store: Store, config: Config, panel: SyntheticPanel, *, n_twins: int = 2,
-                         batch: int = 50, executor: Executor | None = None, market: str = "truth") -> dict:
+                         batch: int = est.STREAM_CHUNK, executor: Executor | None = None,
+                         market: str = "truth") -> dict:
     """Estimate every factor of a freshly loaded synthetic store at borrowed parameters.
 
     Returns a dict with the twins, the seconds spent fitting them and filtering the rest,

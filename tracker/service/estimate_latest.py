@@ -146,10 +146,13 @@ def warning_frames(config, inp, plans, outputs):
                 for p in plans if p.factor_id in outputs}
     # significance across the tracked set, each factor's mean test over its whole history
     tests = {}
+    whole = inp.__dict__.setdefault("_whole_history_tests", {})   # kept for a run's later chunks
     for fid in sorted(inp.rows):
         prep = prepared.get(fid)
         if fid in inp.full:
-            tests[fid] = significance_of(inp.returns[fid][1])
+            if fid not in whole:
+                whole[fid] = significance_of(inp.returns[fid][1])
+            tests[fid] = whole[fid]
             continue
         summary = prep.view if prep is not None else current_summary(inp, fid, sizes)
         test = summary.mean_test() if summary is not None else None
