@@ -16,7 +16,8 @@ One call, :func:`update`, does whatever the stored data require, per factor:
   vintage from that date. The run is recorded in ``estimation_runs``.
 
 Inputs are read on one short connection, the models run with no connection open (in
-worker processes for refits), and the results are written in one transaction. A file
+worker processes for refits), and the results are written in one transaction (a refit of
+many factors: one per chunk of factors, see ``STREAM_CHUNK``). A file
 lock beside the store keeps two processes from estimating at once; the loser skips, and
 the winner's results reach it through the store.
 """

@@ -7,8 +7,10 @@ back in input order, so every executor gives identical results.
 from __future__ import annotations
 
 import os
+from collections import deque
 from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import ProcessPoolExecutor
+from itertools import islice
 from typing import Any, Protocol
 
 
@@ -31,12 +33,28 @@ class LocalProcessExecutor:
         self.workers = workers or max(1, os.cpu_count() or 1)
 
     def map(self, fn, items):
+        """Results in input order, with at most ``window`` tasks submitted and not yet taken.
+
+        ``ProcessPoolExecutor.map`` submits every task at once, and finished results wait
+        in memory until the caller takes them: a refit of 500 long histories, whose caller
+        writes as it goes, held hundreds of whole-history outputs that way (2.8 GB). The
+        next task is submitted before a result is handed over, so the workers stay busy
+        while the caller works.
+        """
         items = list(items)
         if self.workers == 1 or len(items) <= 1:
             yield from SerialExecutor().map(fn, items)
             return
-        with ProcessPoolExecutor(max_workers=min(self.workers, len(items))) as pool:
-            yield from pool.map(fn, items)
+        workers = min(self.workers, len(items))
+        window = max(4 * workers, 8)
+        with ProcessPoolExecutor(max_workers=workers) as pool:
+            rest = iter(items)
+            pending = deque(pool.submit(fn, item) for item in islice(rest, window))
+            while pending:
+                result = pending.popleft().result()
+                for item in islice(rest, 1):
+                    pending.append(pool.submit(fn, item))
+                yield result
 
 
 class DaskExecutor:
