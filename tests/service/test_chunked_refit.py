@@ -48,5 +48,6 @@ def test_chunked_refit_writes_what_one_write_does(tmp_path, monkeypatch):
         pd.testing.assert_frame_equal(one[2][name], chunked[2][name], check_exact=True, obj=name)
     assert len(one[2]["premium_estimates"]) == 7 * 400
     # each chunk is its own transaction: 4 writes for 7 factors in chunks of 2 (3 full
-    # chunks, the rest with the market), against 1 (the version counts writes)
+    # chunks, the first with the market, then the rest), against 1 (the version counts
+    # writes)
     assert chunked[3] - one[3] == 2 * 3

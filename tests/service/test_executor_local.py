@@ -11,6 +11,13 @@ def _square_and_pid(x):
     return x * x, os.getpid()
 
 
+def _slow_first(x):
+    import time
+
+    time.sleep(1.0 if x == 0 else 0.01)
+    return x
+
+
 def test_results_come_in_input_order_past_the_window():
     # 40 tasks against a window of 8: submission continues as results are taken
     out = list(LocalProcessExecutor(2).map(_square_and_pid, range(40)))
@@ -35,3 +42,32 @@ def test_a_lazy_consumer_leaves_at_most_the_window_submitted(monkeypatch):
     assert len(submitted) == 8 + 1                # the window, and one more for the taken result
     rest = list(gen)
     assert len(rest) == 39 and len(submitted) == 40
+
+
+def test_unordered_results_do_not_wait_behind_a_long_task():
+    # the first task is long: unordered, the others come out before it, and all do
+    out = list(LocalProcessExecutor(2).map(_slow_first, range(30), ordered=False))
+    assert sorted(out) == list(range(30))
+    assert out.index(0) > 10
+
+
+def _mark_and_sleep(arg):
+    import time
+    from pathlib import Path
+
+    folder, i = arg
+    (Path(folder) / f"started-{i}").touch()
+    time.sleep(0.01 if i == 0 else 0.5)
+    return i
+
+
+def test_stopping_early_cancels_the_tasks_not_started(tmp_path):
+    # 20 tasks, a window of 8: after the first result the caller stops; the submitted
+    # tasks not yet running are cancelled instead of run to completion at shutdown
+    gen = LocalProcessExecutor(2).map(_mark_and_sleep, [(str(tmp_path), i) for i in range(20)])
+    assert next(gen) == 0
+    gen.close()
+    started = len(list(tmp_path.glob("started-*")))
+    # the first, two running and the pool's few pre-queued calls (workers + 1) may start;
+    # without cancelling, all nine submitted (the window and one more) run
+    assert started <= 6, started

@@ -161,5 +161,7 @@ def loglik_two(params, y: np.ndarray, h: np.ndarray, valid: np.ndarray, state) -
         from tracker.estimation.kim_filter import _kim_pass_two
 
         ll = _kim_pass_two(params, y, h, valid, state)[3]
-        return math.fsum(v for v in ll if v == v)
+        # rows that count (valid): a NaN among them makes the total NaN, as the compiled
+        # pass does, and the fit rejects the point; missing rows carry NaN by design
+        return math.fsum(v for v, ok in zip(ll, np.asarray(valid).tolist()) if ok)
     return float(out[5])

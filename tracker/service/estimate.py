@@ -328,13 +328,23 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
     # factor's whole-history arrays and per-date warnings (at 100 factors x 15,000 days
     # these were 2.4 GB). Every factor's estimates, state, fits and warnings still land
     # together; the set-level tests behind the latest warnings come from the histories,
-    # not from the outputs, so they are the same in every chunk. The market is written
-    # with the last chunk.
+    # not from the outputs, so they are the same in every chunk. No chunk is written
+    # before the market's fit is in, and the market goes with the first chunk: a run that
+    # fails later has then re-derived the market already (a revision's factor written in
+    # an early chunk no longer asks for it). Results are taken as they finish, so the
+    # long market fit holds one worker without stalling the others.
     stream = not light and len(heavy) > STREAM_CHUNK
     detail: dict[str, float] = {}
     rows = 0
     by_id = {p.factor_id: p for p in plans}
-    for out in runner.map(run_refit_item, work):
+    market, market_written = None, False
+    rederive = any(p.kind == "rederive" for p in plans)
+
+    def market_output():
+        return market_mod.run_market(inp, config, cold=cold, refit_all=refit is not None and not refit,
+                                     rederive=rederive, fit=market_fit)
+
+    for out in runner.map(run_refit_item, work, ordered=False):
         if not isinstance(out, FactorOutput):
             market_fit = out
             continue
@@ -344,9 +354,13 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
         done += 1
         if progress:
             progress(done, total, f"fitted {out.factor_id}")
-        if stream and len(outputs) >= STREAM_CHUNK:
-            rows += _write(store, config, inp, [by_id[f] for f in outputs], outputs, None, started,
-                           _summed(detail))
+        if stream and len(outputs) >= STREAM_CHUNK and (market_task is None or market_fit is not None):
+            with_market = None
+            if not market_written:
+                market = with_market = market_output()
+                market_written = True
+            rows += _write(store, config, inp, [by_id[f] for f in outputs], outputs, with_market,
+                           started, _summed(detail))
             outputs.clear()
     lap("fits")
     for out in SerialExecutor().map(run_factor, light):
@@ -358,15 +372,17 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
             progress(done, total, f"filtered {out.factor_id}")
     lap("filters")
 
-    market = market_mod.run_market(inp, config, cold=cold, refit_all=refit is not None and not refit,
-                                   rederive=any(p.kind == "rederive" for p in plans), fit=market_fit)
+    last_market = None
+    if not market_written:
+        market = last_market = market_output()
     lap("market")
     if not plans and market is None:
         return RunSummary(kinds={}, timings=timings)
     if progress:
         progress(total, total, "writing results")
     rest = [p for p in plans if p.factor_id in outputs]
-    rows += _write(store, config, inp, rest, outputs, market, started, _summed(detail))
+    if rest or last_market is not None:
+        rows += _write(store, config, inp, rest, outputs, last_market, started, _summed(detail))
     lap("write")
     timings.update(detail)
     kinds = {p.factor_id: p.kind for p in plans}

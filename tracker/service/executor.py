@@ -1,7 +1,8 @@
 """One interface for fanning refits out: in process, local processes, or Dask.
 
 Each task is a top-level picklable function applied to one picklable item; results come
-back in input order, so every executor gives identical results.
+back in input order (or, with ``ordered=False``, as they finish), and every executor
+gives identical results.
 """
 
 from __future__ import annotations
@@ -9,19 +10,19 @@ from __future__ import annotations
 import os
 from collections import deque
 from collections.abc import Callable, Iterable, Iterator
-from concurrent.futures import ProcessPoolExecutor
+from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from itertools import islice
 from typing import Any, Protocol
 
 
 class Executor(Protocol):
-    def map(self, fn: Callable[[Any], Any], items: Iterable[Any]) -> Iterator[Any]: ...
+    def map(self, fn: Callable[[Any], Any], items: Iterable[Any], *, ordered: bool = True) -> Iterator[Any]: ...
 
 
 class SerialExecutor:
     """Runs tasks one after another in this process (tests, tiny stores)."""
 
-    def map(self, fn, items):
+    def map(self, fn, items, *, ordered: bool = True):
         for item in items:
             yield fn(item)
 
@@ -32,14 +33,17 @@ class LocalProcessExecutor:
     def __init__(self, workers: int | None = None) -> None:
         self.workers = workers or max(1, os.cpu_count() or 1)
 
-    def map(self, fn, items):
-        """Results in input order, with at most ``window`` tasks submitted and not yet taken.
+    def map(self, fn, items, *, ordered: bool = True):
+        """Results in input order (``ordered=False``: as they finish), with at most a window
+        of tasks submitted and not yet taken.
 
         ``ProcessPoolExecutor.map`` submits every task at once, and finished results wait
         in memory until the caller takes them: a refit of 500 long histories, whose caller
         writes as it goes, held hundreds of whole-history outputs that way (2.8 GB). The
         next task is submitted before a result is handed over, so the workers stay busy
-        while the caller works.
+        while the caller works. Unordered, a long task holds one slot of the window
+        instead of stalling every result behind it. Tasks not yet started are cancelled
+        when the caller stops early or a task fails.
         """
         items = list(items)
         if self.workers == 1 or len(items) <= 1:
@@ -50,11 +54,21 @@ class LocalProcessExecutor:
         with ProcessPoolExecutor(max_workers=workers) as pool:
             rest = iter(items)
             pending = deque(pool.submit(fn, item) for item in islice(rest, window))
-            while pending:
-                result = pending.popleft().result()
-                for item in islice(rest, 1):
-                    pending.append(pool.submit(fn, item))
-                yield result
+            try:
+                while pending:
+                    if ordered:
+                        fut = pending.popleft()
+                    else:
+                        done, _ = wait(pending, return_when=FIRST_COMPLETED)
+                        fut = next(f for f in pending if f in done)   # the earliest finished
+                        pending.remove(fut)
+                    result = fut.result()
+                    for item in islice(rest, 1):
+                        pending.append(pool.submit(fn, item))
+                    yield result
+            finally:
+                for fut in pending:
+                    fut.cancel()
 
 
 class DaskExecutor:
@@ -63,12 +77,12 @@ class DaskExecutor:
     def __init__(self, address: str) -> None:
         self.address = address
 
-    def map(self, fn, items):
-        from distributed import Client  # optional dependency: the `dask` extra
+    def map(self, fn, items, *, ordered: bool = True):
+        from distributed import Client, as_completed  # optional dependency: the `dask` extra
 
         with Client(self.address) as client:
             futures = client.map(fn, list(items), pure=False)
-            for fut in futures:
+            for fut in (futures if ordered else as_completed(futures)):
                 yield fut.result()
 
 

@@ -52,9 +52,10 @@ class CancellableExecutor:
     """Runs refits in local worker processes and stops them when ``stop`` is set.
 
     Same contract and start method as :class:`tracker.service.executor.LocalProcessExecutor`
-    (forked local processes, results in input order), but the pool is terminated as soon
-    as ``stop`` is set, and each worker sends its output to the null device: the terminal
-    belongs to the UI, and a warning printed by a fit would scribble over the screen.
+    (forked local processes, results in input order unless ``ordered=False``), but the
+    pool is terminated as soon as ``stop`` is set, and each worker sends its output to the
+    null device: the terminal belongs to the UI, and a warning printed by a fit would
+    scribble over the screen.
     (Spawned or fork-server workers are not an option inside Textual: starting them asks
     for ``sys.stderr.fileno()``, which Textual's print capture answers with -1.)
     """
@@ -64,7 +65,7 @@ class CancellableExecutor:
         self.workers = workers or max(1, os.cpu_count() or 1)
         self.poll_s = poll_s
 
-    def map(self, fn, items):
+    def map(self, fn, items, *, ordered: bool = True):
         items = list(items)
         if self.workers == 1 or len(items) <= 1:
             for item in items:
@@ -74,7 +75,7 @@ class CancellableExecutor:
         ctx = multiprocessing.get_context("fork")
         pool = ctx.Pool(min(self.workers, len(items)), initializer=_quiet_worker)
         try:
-            results = pool.imap(fn, items)
+            results = pool.imap(fn, items) if ordered else pool.imap_unordered(fn, items)
             for _ in items:
                 while True:
                     self._check()
