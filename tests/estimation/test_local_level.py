@@ -6,7 +6,6 @@ Koopman (2012), ch. 2, Nile estimates; seeded simulations with known truth.
 """
 
 import json
-import time
 
 import numpy as np
 import pytest

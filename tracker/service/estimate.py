@@ -49,6 +49,8 @@ from tracker.service.estimate_io import (
     Inputs,
     premium_columns,
     read_meta,
+    read_stamps,
+    regime_columns,
     read_returns,
 )
 from tracker.service.estimate_latest import (
@@ -337,12 +339,18 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
     detail: dict[str, float] = {}
     rows = 0
     by_id = {p.factor_id: p for p in plans}
-    market, market_written = None, False
-    rederive = any(p.kind == "rederive" for p in plans)
+    market = None
+    market_due = True
 
-    def market_output():
-        return market_mod.run_market(inp, config, cold=cold, refit_all=refit is not None and not refit,
-                                     rederive=rederive, fit=market_fit)
+    def market_once():
+        """The market's output, for the first write that asks (None after that)."""
+        nonlocal market, market_due
+        if not market_due:
+            return None
+        market_due = False
+        market = market_mod.run_market(inp, config, cold=cold, refit_all=refit is not None and not refit,
+                                       rederive=any(p.kind == "rederive" for p in plans), fit=market_fit)
+        return market
 
     for out in runner.map(run_refit_item, work, ordered=False):
         if not isinstance(out, FactorOutput):
@@ -355,12 +363,8 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
         if progress:
             progress(done, total, f"fitted {out.factor_id}")
         if stream and len(outputs) >= STREAM_CHUNK and (market_task is None or market_fit is not None):
-            with_market = None
-            if not market_written:
-                market = with_market = market_output()
-                market_written = True
-            rows += _write(store, config, inp, [by_id[f] for f in outputs], outputs, with_market,
-                           started, _summed(detail))
+            rows += _write(store, config, inp, [by_id[f] for f in outputs], outputs, market_once(),
+                           started, detail)
             outputs.clear()
     lap("fits")
     for out in SerialExecutor().map(run_factor, light):
@@ -372,9 +376,7 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
             progress(done, total, f"filtered {out.factor_id}")
     lap("filters")
 
-    last_market = None
-    if not market_written:
-        market = last_market = market_output()
+    last_market = market_once()
     lap("market")
     if not plans and market is None:
         return RunSummary(kinds={}, timings=timings)
@@ -382,7 +384,7 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
         progress(total, total, "writing results")
     rest = [p for p in plans if p.factor_id in outputs]
     if rest or last_market is not None:
-        rows += _write(store, config, inp, rest, outputs, last_market, started, _summed(detail))
+        rows += _write(store, config, inp, rest, outputs, last_market, started, detail)
     lap("write")
     timings.update(detail)
     kinds = {p.factor_id: p.kind for p in plans}
@@ -395,18 +397,6 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
 STREAM_CHUNK = 24
 
 
-class _summed(dict):
-    """A timings dict whose updates add to ``into`` (the phases of several chunk writes)."""
-
-    def __init__(self, into: dict) -> None:
-        super().__init__()
-        self.into = into
-
-    def update(self, other=(), **kw) -> None:
-        for k, v in dict(other, **kw).items():
-            self.into[k] = self.into.get(k, 0.0) + v
-
-
 def run_refit_item(item):
     """Top-level (picklable) worker task of a refit: a factor's ``(task, thresholds)`` or the
     market's :class:`market.MarketFitTask`, with BLAS on one thread (``one_blas_thread``)."""
@@ -414,27 +404,6 @@ def run_refit_item(item):
         if isinstance(item, market_mod.MarketFitTask):
             return market_mod.run_fit_task(item)
         return run_factor_with_warnings(item)
-
-
-def _regime_columns(dates, filtered, predicted) -> dict:
-    ok = np.all(np.isfinite(filtered), axis=1)
-    f, p = filtered[ok], predicted[ok]
-    return {
-        "date": np.asarray(dates)[ok].astype("datetime64[ns]"),
-        "n_regimes": np.full(f.shape[0], f.shape[1], dtype=np.int64),
-        "regime": np.argmax(f, axis=1).astype(int),
-        "probability": np.max(f, axis=1),
-        "filtered": f,                     # (n, K): list columns (FrameBatch)
-        "predicted": p,
-    }
-
-
-def regime_frame(subject: str, dates, filtered, predicted, vintage: int, fit_id) -> pd.DataFrame:
-    cols = _regime_columns(dates, filtered, predicted)
-    for key in ("filtered", "predicted"):
-        cols[key] = [list(map(float, r)) for r in cols[key]]
-    return pd.DataFrame({"subject_id": subject, "date": cols.pop("date"), "vintage": vintage,
-                         "fit_id": fit_id, **cols})
 
 
 def _book(inp: Inputs, plan: Plan, out: FactorOutput, codes: dict) -> Book:
@@ -497,8 +466,7 @@ def _write(store, config, inp, plans, outputs, market, started, timings: dict | 
     t1 = time.perf_counter()
     state_rows, run_rows = [], []
     with store.transaction() as con:
-        stamps = {(r[0], r[1]): r[3] for r in con.execute(sql("estimation.state_stamps")).fetchall()}
-        if stamps != inp.stamps:
+        if read_stamps(con) != inp.stamps:
             raise ConcurrentUpdate("another process updated the estimates meanwhile")
         premium = FrameBatch(con, "estimation.insert_premium_frame")
         regimes = FrameBatch(con, "estimation.insert_regime_frame")
@@ -528,7 +496,7 @@ def _write(store, config, inp, plans, outputs, market, started, timings: dict | 
                         premium_columns(out, m, PERIODS_PER_YEAR[inp.freq[fid]]))
             if out.regime_filtered is not None:
                 regimes.add({"subject_id": fid, "vintage": plan.vintage, "fit_id": regime_fit},
-                            _regime_columns(out.dates[m], out.regime_filtered[m], out.regime_predicted[m]))
+                            regime_columns(out.dates[m], out.regime_filtered[m], out.regime_predicted[m]))
             state_rows.append((fid, MODEL_PREMIUM, premium_fit or 0, _d(row.last),
                                _state_json(inp, plan, out, prepared.get(fid), _book(inp, plan, out, codes)),
                                inp.read_at))
@@ -548,12 +516,14 @@ def _write(store, config, inp, plans, outputs, market, started, timings: dict | 
             market_mod.write_market(con, market, inp, started)
         con.execute(sql("estimation.bump_version"))
         # what this write leaves: the next chunk of the same run checks against it
-        new_stamps = {(r[0], r[1]): r[3] for r in con.execute(sql("estimation.state_stamps")).fetchall()}
+        new_stamps = read_stamps(con)
         t2 = time.perf_counter()
     inp.stamps = new_stamps                    # committed
     if timings is not None:   # commit and close include DuckDB's checkpoint of the store
-        timings.update({"write_warnings": t1 - t0, "write_statements": t2 - t1,
-                        "write_commit_close": time.perf_counter() - t2})
+        # added to: a chunked refit writes several times
+        for key, sec in (("write_warnings", t1 - t0), ("write_statements", t2 - t1),
+                         ("write_commit_close", time.perf_counter() - t2)):
+            timings[key] = timings.get(key, 0.0) + sec
     return premium.written
 
 

@@ -157,7 +157,7 @@ def read_meta(con, *, verify: bool = False) -> Inputs:
     revisions = {r[0]: r[1] for r in con.execute(sql("estimation.pending_revisions")).fetchall()}
     since = (read_at - timedelta(days=7)) if read_at is not None else datetime(1970, 1, 1)
     recent = dict(con.execute(sql("estimation.recent_revision_counts"), [since]).fetchall())
-    stamps = {(r[0], r[1]): r[3] for r in con.execute(sql("estimation.state_stamps")).fetchall()}
+    stamps = read_stamps(con)
     inp = Inputs(read_at, factors, rows, fits, states, vintages, revisions, recent, codes, stamps)
     inp.drop_seen, inp.books = drop_seen, books
     return inp
@@ -248,6 +248,26 @@ def stored_history(inp: Inputs, fid: str, before: np.datetime64 | None, k: int):
 
 
 # ---------------------------------------------------------------------- writing
+
+
+def read_stamps(con) -> dict:
+    """(subject, model) -> when its filter state was written: a write checks these are
+    still what its inputs were read against."""
+    return {(r[0], r[1]): r[3] for r in con.execute(sql("estimation.state_stamps")).fetchall()}
+
+
+def regime_columns(dates, filtered, predicted) -> dict:
+    """The regime estimate columns of the rows with complete probabilities (FrameBatch)."""
+    ok = np.all(np.isfinite(filtered), axis=1)
+    f, p = filtered[ok], predicted[ok]
+    return {
+        "date": np.asarray(dates)[ok].astype("datetime64[ns]"),
+        "n_regimes": np.full(f.shape[0], f.shape[1], dtype=np.int64),
+        "regime": np.argmax(f, axis=1).astype(int),
+        "probability": np.max(f, axis=1),
+        "filtered": f,                     # (n, K): list columns
+        "predicted": p,
+    }
 
 
 def premium_columns(out, m: np.ndarray, ppy: int) -> dict:

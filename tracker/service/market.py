@@ -24,7 +24,7 @@ import pandas as pd
 
 from tracker.estimation.market_regime import MarketRegimeModel, MarketRegimeParams, market_filter
 from tracker.estimation.markov_regimes import RegimeFilterState
-from tracker.service.estimate_io import BOOK_KEY, Book
+from tracker.service.estimate_io import BOOK_KEY, Book, FrameBatch, regime_columns
 from tracker.service.executor import one_blas_thread
 from tracker.service.factor_models import dumps
 from tracker.store.sqlfiles import sql
@@ -235,8 +235,6 @@ def run_market(inp, config, *, refit_all: bool, rederive: bool, cold: bool = Fal
 
 
 def write_market(con, out: MarketOutput, inp, started) -> None:
-    from tracker.service.estimate import regime_frame
-
     fit_id = None
     if out.fit is not None:
         fit = out.fit
@@ -255,10 +253,10 @@ def write_market(con, out: MarketOutput, inp, started) -> None:
     if out.supersede_from is not None:
         con.execute(sql("estimation.supersede_regime"), [MARKET, pd.Timestamp(out.supersede_from).date()])
     if out.dates.size:
-        rf = regime_frame(MARKET, out.dates, out.filtered, out.predicted, out.vintage, fit_id)
-        con.register("incoming_frame", rf)
-        con.execute(sql("estimation.insert_regime_frame"))
-        con.unregister("incoming_frame")
+        rows = FrameBatch(con, "estimation.insert_regime_frame")
+        rows.add({"subject_id": MARKET, "vintage": out.vintage, "fit_id": fit_id},
+                 regime_columns(out.dates, out.filtered, out.predicted))
+        rows.flush()
     if out.state:
         through = pd.Timestamp(out.through).date()
         book = Book(through=str(through), drop_seen=int(inp.drop_seen), vintage=int(out.vintage))
