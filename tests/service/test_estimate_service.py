@@ -13,7 +13,6 @@ from tracker.seed_db import scenario as sc
 from tracker.service.estimate import update
 from tracker.service.factor_models import (
     FactorTask,
-    MODEL_PREMIUM,
     run_factor,
 )
 

@@ -192,3 +192,45 @@ def test_fast_advance_stores_what_the_whole_history_path_stores(estimated_demo_t
         assert ha["n_rows"] == hb["n_rows"] and ha["gap"] == hb["gap"] and ha["run"] == hb["run"]
         np.testing.assert_allclose(unpack(ha["returns"]["cross"]), unpack(hb["returns"]["cross"]), rtol=RTOL)
         np.testing.assert_allclose(unpack(ha["errors"]), unpack(hb["errors"]), rtol=RTOL)
+
+
+# ------------------------------------------------------------------ the refit's extras
+
+
+def test_refit_extras_give_the_whole_history_latest_warnings():
+    # A refit's latest-date rules take the fragility and hindsight values from the run's own
+    # pass (factor_models._latest_extras) instead of three more whole-history passes; held
+    # equal to those passes (extras removed) on invented data, rules and values to 1e-9.
+    import dataclasses
+
+    from tracker.config import Config
+    from tracker.service.estimate import _settings, _thresholds
+    from tracker.service.factor_models import FactorTask, run_factor
+    from tracker.service.factor_warnings import LatestContext, latest_warnings
+
+    rng = np.random.default_rng(11)
+    n = 1500
+    dates = np.arange(np.datetime64("2020-01-01"), np.datetime64("2020-01-01") + n).astype("datetime64[D]")
+    y = 3e-4 + 0.01 * rng.standard_normal(n)
+    y[[40, 700]] = np.nan
+    config = Config()
+    out = run_factor(FactorTask("F", "daily", dates, y, _settings(config), refit=True))
+    assert out.extras and out.extras["hindsight"] is not None
+    from tracker.service.factor_models import hindsight_premium, refiltered_premium
+
+    whole = hindsight_premium(out.params, y)
+    np.testing.assert_allclose(out.extras["hindsight"], whole[-out.extras["hindsight"].size:], rtol=RTOL)
+    np.testing.assert_allclose([out.extras["q_half"], out.extras["q_double"]],
+                               [refiltered_premium(out.params, y, q_scale=s)[0] for s in (0.5, 2.0)],
+                               rtol=RTOL)
+    th = _thresholds(config)
+    ctx = LatestContext(frequency="daily", is_new=False, t_stat=1.2, p_value=0.23, p_adjusted=0.5,
+                        latest_date_in_set=dates[-1], revision_count=0, fit_status="ok",
+                        fit_message="", regime_status="ok", regime_message="")
+    arrays = (out.dates, out.returns, out.premium, out.premium_var, out.std_error, out.loglik_t,
+              out.regime_filtered)
+    got = latest_warnings(out, ctx, th, *arrays)
+    ref = latest_warnings(dataclasses.replace(out, extras={}), ctx, th, *arrays)
+    assert [r["code"] for r in got] == [r["code"] for r in ref] and got
+    np.testing.assert_allclose([r["value"] if r["value"] is not None else np.nan for r in got],
+                               [r["value"] if r["value"] is not None else np.nan for r in ref], rtol=RTOL)

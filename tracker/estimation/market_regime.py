@@ -4,8 +4,11 @@ Model, for the T x N matrix of factor returns x_t (decimal per period)::
 
     x_t | S_t = k ~ N(mu_k, Sigma_k),   P(S_{t+1}=j | S_t=i) = transition[i, j]
 
-estimated with hmmlearn ``GaussianHMM`` for each number of states in 2..4, the number
-chosen by BIC. Choices and the library traps they avoid:
+estimated by EM (Baum-Welch) for each number of states in 2..4, the number chosen by
+BIC. The EM is hmmlearn's ``GaussianHMM`` algorithm with its update rules; on long
+histories it runs as a compiled pass (:mod:`tracker.estimation.gaussian_hmm`, hmmlearn
+its reference twin in the tests), on short ones in hmmlearn itself. Choices and the
+library traps they avoid:
 
 * Units: each factor column is divided by its sample standard deviation before the fit.
   hmmlearn adds ``covars_prior`` (1e-2) to every covariance entry and ``min_covar``
@@ -19,7 +22,7 @@ chosen by BIC. Choices and the library traps they avoid:
   are split into K groups by quantiles of a smoothed cross-sectional volatility proxy;
   further seeds draw random quantile cuts and window lengths.
 * Convergence: hmmlearn stops at ``n_iter`` and still says converged, so we judge it
-  ourselves from ``monitor_.history``: converged only if the last change of the
+  ourselves from the log-likelihood history: converged only if the last change of the
   log-likelihood is below ``tol``. ``n_iter`` defaults to 1000, not hmmlearn's 10.
 * States are ordered calmest first by total volatility sqrt(trace(Sigma_k)) (decimal),
   with label stability across refits as in
@@ -30,15 +33,14 @@ chosen by BIC. Choices and the library traps they avoid:
 """
 from __future__ import annotations
 
-import logging
 import math
-import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
-from hmmlearn.hmm import GaussianHMM
 from scipy.linalg import solve_triangular
 
+from tracker.estimation import gaussian_hmm
+from tracker.estimation.gaussian_hmm import HmmParams
 from tracker.estimation.markov_regimes import (
     TRANSITION_CONVENTION,
     RegimeFiltered,
@@ -291,7 +293,7 @@ class MarketRegimeFit:
     state_share : ndarray, shape (K,)
         Average filtered probability of each state over the sample.
     order : tuple of int
-        ``order[k]`` = hmmlearn's raw state index reported as state k.
+        ``order[k]`` = the EM's raw state index reported as state k.
     previous_match : tuple of int or None
         With a previous fit of the same shape: previous state each state resembles most.
     scale : ndarray, shape (N,)
@@ -328,13 +330,14 @@ class MarketRegimeFit:
         return {c.n_states: c.bic for c in self.candidates}
 
 
-def em_converged(monitor, tol: float) -> bool:
-    """Our convergence verdict from an hmmlearn ``monitor_``.
+def em_converged(run, tol: float) -> bool:
+    """Our convergence verdict from an EM run's ``history`` (an
+    :class:`~tracker.estimation.gaussian_hmm.EmResult` or an hmmlearn ``monitor_``).
 
     hmmlearn's ``monitor_.converged`` is also True when EM merely hit ``n_iter``; here
     only a last log-likelihood change below ``tol`` counts.
     """
-    hist = list(monitor.history)
+    hist = list(run.history)
     return len(hist) >= 2 and abs(hist[-1] - hist[-2]) < tol
 
 
@@ -365,7 +368,11 @@ class MarketRegimeModel:
         A state with a smaller average filtered probability, or fewer expected rows,
         makes the candidate 'unidentified'.
     min_covar, covars_prior : float
-        Passed to hmmlearn (standardised units).
+        hmmlearn's regularisation (standardised units): added to the starting
+        covariances' diagonal, and to every covariance entry in each M step.
+    engine : {'auto', 'compiled', 'hmmlearn'}
+        Who runs the EM (:func:`tracker.estimation.gaussian_hmm.fit`); 'auto' compiles
+        long histories and leaves short ones to hmmlearn.
     vol_tie_ratio : float
         See :func:`tracker.estimation.markov_regimes.order_regimes`.
     init_window : int
@@ -377,7 +384,7 @@ class MarketRegimeModel:
                  min_obs_per_param: float = 10.0, min_state_share: float = 0.01,
                  min_state_obs: float = 10.0, min_covar: float = 1e-3,
                  covars_prior: float = 1e-2, vol_tie_ratio: float = 1.05,
-                 init_window: int = 21):
+                 init_window: int = 21, engine: str = "auto"):
         if covariance_type not in COVARIANCE_TYPES:
             raise ValueError(f"covariance_type must be one of {COVARIANCE_TYPES}")
         states = tuple(sorted(int(s) for s in states))
@@ -397,6 +404,7 @@ class MarketRegimeModel:
         self.covars_prior = float(covars_prior)
         self.vol_tie_ratio = float(vol_tie_ratio)
         self.init_window = int(init_window)
+        self.engine = engine
 
     @staticmethod
     def filter(x, params: MarketRegimeParams,
@@ -424,41 +432,31 @@ class MarketRegimeModel:
             groups = np.argsort(np.argsort(proxy, kind="stable")) * k // t_len
         return groups
 
-    def _make_hmm(self, k, z, groups, seed):
+    def _start(self, k, z, groups) -> HmmParams:
+        """EM start from a grouping of the rows: group means and covariances, equal start
+        probabilities, 0.95 on the transition diagonal."""
         n = z.shape[1]
-        hmm = GaussianHMM(n_components=k, covariance_type=self.covariance_type,
-                          n_iter=self.n_iter, tol=self.tol, random_state=seed,
-                          min_covar=self.min_covar, covars_prior=self.covars_prior,
-                          init_params="", params="stmc")
-        hmm.startprob_ = np.full(k, 1.0 / k)
         trans = np.full((k, k), 0.05 / (k - 1))
         np.fill_diagonal(trans, 0.95)
-        hmm.transmat_ = trans
-        hmm.means_ = np.array([z[groups == s].mean(axis=0) for s in range(k)])
+        means = np.array([z[groups == s].mean(axis=0) for s in range(k)])
         covs = np.array([np.cov(z[groups == s].T).reshape(n, n) + self.min_covar * np.eye(n)
                          for s in range(k)])
         if self.covariance_type == "diag":
             covs = np.diagonal(covs, axis1=1, axis2=2)
-        hmm.covars_ = covs
-        return hmm
+        return HmmParams(np.full(k, 1.0 / k), trans, means, covs, self.covariance_type)
 
     # -- one candidate ---------------------------------------------------------
-    def _warm_hmm(self, k, previous: MarketRegimeParams, scale, seed):
-        """An HMM started at a previous fit's parameters (standardised units)."""
+    def _warm_start(self, previous: MarketRegimeParams, scale) -> HmmParams:
+        """EM start at a previous fit's parameters (standardised units)."""
         n = scale.size
-        hmm = GaussianHMM(n_components=k, covariance_type=self.covariance_type,
-                          n_iter=self.n_iter, tol=self.tol, random_state=seed,
-                          min_covar=self.min_covar, covars_prior=self.covars_prior,
-                          init_params="", params="stmc")
         start = np.clip(np.asarray(previous.startprob, float), 1e-6, None)
-        hmm.startprob_ = start / start.sum()
         trans = np.clip(np.asarray(previous.transition, float), 1e-6, None)
-        hmm.transmat_ = trans / trans.sum(axis=1, keepdims=True)
-        hmm.means_ = np.asarray(previous.means, float) / scale[None, :]
         full = previous.covariance_matrices / np.outer(scale, scale)[None, :, :]
         full = full + self.min_covar * np.eye(n)[None]
-        hmm.covars_ = full if self.covariance_type == "full" else np.diagonal(full, axis1=1, axis2=2)
-        return hmm
+        covs = full if self.covariance_type == "full" else np.diagonal(full, axis1=1, axis2=2)
+        return HmmParams(start / start.sum(), trans / trans.sum(axis=1, keepdims=True),
+                         np.asarray(previous.means, float) / scale[None, :], covs,
+                         self.covariance_type)
 
     def _fit_candidate(self, z, k, scale, warm: MarketRegimeParams | None = None):
         t_len, n = z.shape
@@ -471,40 +469,32 @@ class MarketRegimeModel:
         rng = np.random.default_rng(self.seed + 7919 * k)
         log_shift = t_len * float(np.log(scale).sum())  # standardised -> decimal
         best, reasons = None, []
-        hmm_log = logging.getLogger("hmmlearn")
-        level = hmm_log.level
-        hmm_log.setLevel(logging.ERROR)  # its "not converging" notes become our statuses
-        try:
-            # a warm refit (k is the previous fit's number of states): its optimum and the default
-            # quantile start; a cold fit: the default start and n_seeds - 1 random ones
-            runs = [-1, 0] if warm is not None else range(self.n_seeds)
-            for i in runs:
-                seed = self.seed + max(i, 0)
-                try:
-                    if i < 0:
-                        hmm = self._warm_hmm(k, warm, scale, seed)
-                    else:
-                        groups = self._initial_groups(z, k, rng, first=(i == 0))
-                        hmm = self._make_hmm(k, z, groups, seed)
-                    with warnings.catch_warnings():
-                        warnings.simplefilter("ignore")
-                        hmm.fit(z)
-                        llf = float(hmm.score(z))
-                except Exception as exc:  # one bad initialisation must not sink the rest
-                    reasons.append(("failed", f"seed {seed}: failed ({exc})"))
-                    continue
-                if not em_converged(hmm.monitor_, self.tol):
-                    reasons.append(("not_converged", f"seed {seed}: not converged after "
-                                    f"{hmm.monitor_.iter} EM iterations"))
-                    continue
-                problem = self._identification_problem(hmm, z)
-                if problem is not None:
-                    reasons.append(("unidentified", f"seed {seed}: {problem}"))
-                    continue
-                if best is None or llf > best[0]:
-                    best = (llf, hmm, seed)
-        finally:
-            hmm_log.setLevel(level)
+        # a warm refit (k is the previous fit's number of states): its optimum and the default
+        # quantile start; a cold fit: the default start and n_seeds - 1 random ones
+        runs = [-1, 0] if warm is not None else range(self.n_seeds)
+        for i in runs:
+            seed = self.seed + max(i, 0)
+            try:
+                if i < 0:
+                    start = self._warm_start(warm, scale)
+                else:
+                    start = self._start(k, z, self._initial_groups(z, k, rng, first=(i == 0)))
+                run = gaussian_hmm.fit(z, start, n_iter=self.n_iter, tol=self.tol,
+                                       covars_prior=self.covars_prior, min_covar=self.min_covar,
+                                       engine=self.engine)
+            except Exception as exc:  # one bad initialisation must not sink the rest
+                reasons.append(("failed", f"seed {seed}: failed ({exc})"))
+                continue
+            if not em_converged(run, self.tol):
+                reasons.append(("not_converged", f"seed {seed}: not converged after "
+                                f"{run.n_iter} EM iterations"))
+                continue
+            problem, llf = self._identification_problem(run.params, z)
+            if problem is not None:
+                reasons.append(("unidentified", f"seed {seed}: {problem}"))
+                continue
+            if best is None or llf > best[0]:
+                best = (llf, run, seed)
         if best is None:
             text = "; ".join(r[1] for r in reasons)
             found = {r[0] for r in reasons}
@@ -515,27 +505,27 @@ class MarketRegimeModel:
         llf_dec = best[0] - log_shift
         bic = -2.0 * llf_dec + n_params * math.log(t_len)
         return MarketRegimeCandidate(k, "ok", "ok", llf_dec, n_params, bic, True,
-                                     int(best[1].monitor_.iter), best[2]), best[1]
+                                     best[1].n_iter, best[2]), best[1].params
 
-    def _identification_problem(self, hmm, z):
-        if not (np.all(np.isfinite(hmm.means_)) and np.all(np.isfinite(hmm.transmat_))):
-            return "non-finite parameters"
-        covs = hmm.covars_
-        for s in range(hmm.n_components):
-            eig = np.linalg.eigvalsh(covs[s])
+    def _identification_problem(self, params: HmmParams, z):
+        """(problem or None, log-likelihood of ``z`` at ``params`` by the forward filter)."""
+        if not (np.all(np.isfinite(params.means)) and np.all(np.isfinite(params.transmat))
+                and np.all(np.isfinite(params.covars))):
+            return "non-finite parameters", np.nan
+        k = params.n_states
+        for s in range(k):
+            eig = np.linalg.eigvalsh(params.full_covars[s])
             if not np.all(np.isfinite(eig)) or eig.min() <= 1e-8 * max(eig.max(), 1e-300):
-                return f"state {s} has a degenerate covariance"
-        k = hmm.n_components
-        cov_arg = covs if self.covariance_type == "full" else np.diagonal(covs, axis1=1, axis2=2)
-        log_dens = mvn_logpdf_matrix(z, hmm.means_, cov_arg, self.covariance_type)
-        filt = filter_from_log_densities(log_dens, hmm.transmat_,
-                                         RegimeFilterState.start(hmm.startprob_))
+                return f"state {s} has a degenerate covariance", np.nan
+        log_dens = mvn_logpdf_matrix(z, params.means, params.covars, self.covariance_type)
+        filt = filter_from_log_densities(log_dens, params.transmat,
+                                         RegimeFilterState.start(params.startprob))
         share = filt.filtered.mean(axis=0)
         for s in range(k):
             if share[s] < self.min_state_share or share[s] * z.shape[0] < self.min_state_obs:
                 return (f"state {s} has almost no weight (average probability "
-                        f"{share[s]:.4f})")
-        return None
+                        f"{share[s]:.4f})"), np.nan
+        return None, float(filt.loglik)
 
     # -- public fit -------------------------------------------------------------
     def _failure(self, status, message, n_obs, n_factors, k=None, columns=None, **extra):
@@ -591,10 +581,10 @@ class MarketRegimeModel:
                             and np.all(np.isfinite(previous.covars))) else None
         states = (warm.n_states,) if warm is not None else self.states
         for k in states:
-            cand, hmm = self._fit_candidate(z, k, scale, warm)
+            cand, fitted = self._fit_candidate(z, k, scale, warm)
             cands.append(cand)
-            if hmm is not None:
-                models[k] = hmm
+            if fitted is not None:
+                models[k] = fitted
         cands = tuple(cands)
         usable = [c for c in cands if c.status == "ok"]
         if not usable:
@@ -623,10 +613,10 @@ class MarketRegimeModel:
             candidates=cands, state_share=filt.filtered.mean(axis=0), order=order,
             previous_match=match, scale=scale, filtered=filt, warnings=tuple(notes))
 
-    def _ordered_params(self, hmm, scale, previous, columns):
-        k = hmm.n_components
-        means = hmm.means_ * scale[None, :]
-        full = hmm.covars_ * np.outer(scale, scale)[None, :, :]
+    def _ordered_params(self, fitted: HmmParams, scale, previous, columns):
+        k = fitted.n_states
+        means = fitted.means * scale[None, :]
+        full = fitted.full_covars * np.outer(scale, scale)[None, :, :]
         variances = np.diagonal(full, axis1=1, axis2=2)
         dist = None
         if (previous is not None and previous.n_states == k
@@ -638,7 +628,7 @@ class MarketRegimeModel:
         o = list(order)
         covars = full[o] if self.covariance_type == "full" else variances[o]
         params = MarketRegimeParams(k, means[o], covars, self.covariance_type,
-                                    hmm.transmat_[np.ix_(o, o)], hmm.startprob_[o], columns)
+                                    fitted.transmat[np.ix_(o, o)], fitted.startprob[o], columns)
         return params, order, match
 
 

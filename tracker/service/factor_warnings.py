@@ -188,9 +188,15 @@ def latest_warnings(out: FactorOutput, ctx: LatestContext, th: wr.WarningThresho
     vol = out.vol_forecast[-1] if out.vol_forecast.size else float("nan")
     n_drop = th.fragile_drop_last
     finite = np.isfinite(full_returns)
-    smoothed = hindsight_premium(out.params, full_returns)
-    q_half = refiltered_premium(out.params, full_returns, q_scale=0.5)[0]
-    q_double = refiltered_premium(out.params, full_returns, q_scale=2.0)[0]
+    if out.extras:
+        # the run's own pass already gave the latest fragility and hindsight values over
+        # this whole history (factor_models._latest_extras; a twin test holds them equal)
+        smoothed = out.extras["hindsight"]
+        q_half, q_double = out.extras["q_half"], out.extras["q_double"]
+    else:
+        smoothed = hindsight_premium(out.params, full_returns)
+        q_half = refiltered_premium(out.params, full_returns, q_scale=0.5)[0]
+        q_double = refiltered_premium(out.params, full_returns, q_scale=2.0)[0]
     drop_last = full_premium[last - n_drop] if last - n_drop >= 0 else None
     probs = None
     if full_regime_filtered is not None:

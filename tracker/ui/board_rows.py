@@ -10,7 +10,7 @@ from dataclasses import dataclass
 from rich.text import Text
 
 from tracker.service.report import ordered_codes, severity_of, warning_message
-from tracker.service.views import Board, BoardRow
+from tracker.service.views import Board, BoardRow, regime_name
 from tracker.ui import formatting as fmt
 
 WIDE_FROM = 120          # terminal columns from which the wide layout is used
@@ -150,7 +150,7 @@ def market_text(board: Board, width: int) -> str:
     m = board.market
     if m.regime is None:
         return _fit(width, f"Market regime: not estimated yet ({m.message})", "Market regime: not estimated yet")
-    probs = [(fmt.regime_name_of(i, m.n_regimes), p) for i, p in enumerate(m.probabilities)]
+    probs = [(regime_name(i, m.n_regimes), p) for i, p in enumerate(m.probabilities)]
     top = m.probabilities[m.regime] if m.regime < len(m.probabilities) else math.nan
     dur = m.durations[m.regime] if m.regime < len(m.durations) else math.nan
     long_probs = ", ".join(f"{n} {fmt.prob(p)}" for n, p in probs)

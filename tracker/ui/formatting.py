@@ -11,7 +11,6 @@ import re
 from datetime import date, datetime
 
 from tracker.service.report import SEVERITY_NAMES, ordered_codes, severity_of
-from tracker.service.views import regime_name as regime_name_of
 
 SEVERITY_MARKS = {0: " ", 1: "i", 2: "!", 3: "!!"}
 SEVERITY_STYLES = {0: "", 1: "dim", 2: "bold #d7af00", 3: "bold #ff3030"}
