@@ -258,6 +258,28 @@ def test_noise_detail_states_years_needed():
     assert "about 44 years" in w.detail
 
 
+@pytest.mark.parametrize("th", [WarningThresholds(), WarningThresholds(noise_band_level=0.5, noise_sd_multiple=1.5)])
+def test_noise_for_many_rows_equals_the_rule_row_by_row(th):
+    # the vectorised NOISE (refits flag most dates) against rule_noise on every row:
+    # same rows, same text, same numbers; edge rows: NaN, zero sd, zero premium, no vol
+    rng = np.random.default_rng(RNG_SEED)
+    n = 3000
+    mu = rng.normal(0, 1e-4, n)
+    sd = np.abs(rng.normal(1e-4, 5e-5, n))
+    vol = np.abs(rng.normal(0.01, 0.003, n))
+    mu[:4], sd[4:8], vol[8:12] = np.nan, [0.0, np.nan, -1.0, np.inf], [np.nan, 0.0, -0.01, np.inf]
+    mu[12:16] = 0.0
+    for ppy in (252, 12, None):
+        want = {i: w for i in range(n)
+                if (w := wr.rule_noise(mu[i], sd[i], th, vol[i], ppy)) is not None}
+        got = wr.rule_noise_many(mu, sd, th, vol, ppy)
+        assert 0 < len(want) < n
+        assert list(got) == list(want)
+        assert all(got[i] == want[i] for i in want)
+    assert wr.rule_noise_many(mu, sd, th) == {i: w for i in range(n)
+                                              if (w := wr.rule_noise(mu[i], sd[i], th)) is not None}
+
+
 def test_fdr_rule_boundaries():
     th = WarningThresholds()
     assert wr.rule_multiple_testing(0.05, 0.051, th) is not None

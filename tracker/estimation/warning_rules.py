@@ -524,6 +524,49 @@ def rule_noise(premium, premium_sd, th: WarningThresholds, volatility=None,
                  years_text=years_text)
 
 
+def rule_noise_many(premium, premium_sd, th: WarningThresholds, volatility=None,
+                    periods_per_year=None) -> dict[int, Warning]:
+    """:func:`rule_noise` for many rows at once: {row index: warning} where it fires.
+
+    The same warnings, text and numbers as calling :func:`rule_noise` row by row (the
+    tests compare them), at a fraction of the cost: the firing test is vectorised and
+    the parts of the text that do not change between rows are formatted once. A refit
+    of a long history flags most of its dates, so this runs for tens of thousands of
+    rows per factor.
+    """
+    mu = np.asarray(premium, float)
+    sd = np.asarray(premium_sd, float)
+    vol = np.full(mu.shape, np.nan) if volatility is None else np.asarray(volatility, float)
+    z_band = noise_band_z(th)
+    limit = max(th.noise_sd_multiple, z_band)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ratio = np.abs(mu) / sd
+        fires = np.isfinite(mu) & np.isfinite(sd) & (sd > 0) & (ratio < limit)
+    ppy_ok = _finite(periods_per_year)
+    root = math.sqrt(periods_per_year) if ppy_ok else math.nan
+    spec = CATALOGUE["NOISE"]
+    constant = dict(threshold=format_number(limit), sd_multiple=format_number(th.noise_sd_multiple),
+                    band_pct=format_number(100 * th.noise_band_level))
+    # the text with every constant part filled in; {0} (value) and {1} (years) stay open
+    template = {band: spec.detail_template.format(value="{0}", years_text="{1}", band_text=band, **constant)
+                for band in ("contains", "excludes")}
+    out: dict[int, Warning] = {}
+    for i in np.flatnonzero(fires).tolist():
+        r, v, m = float(ratio[i]), float(vol[i]), float(mu[i])
+        years_text = ""
+        if math.isfinite(v) and v > 0 and ppy_ok:
+            sr = m / v * root
+            a = abs(sr)                                  # as sig.years_for_t_stat(sr)
+            years = math.inf if a == 0.0 else (2.0 / a) ** 2
+            years_text = (f"At the current annual Sharpe ratio of {format_number(sr)}, a "
+                          f"t-stat of 2 needs about {format_number(round(years))} years of data."
+                          if math.isfinite(years) else
+                          "At a Sharpe ratio of zero no amount of data gives a t-stat of 2.")
+        detail = template["contains" if r < z_band else "excludes"].format(format_number(r), years_text)
+        out[i] = Warning("NOISE", spec.severity, spec.message, detail, r, float(limit), spec.source)
+    return out
+
+
 _METHOD_NAMES = {"fdr_by": "Benjamini-Yekutieli", "fdr_bh": "Benjamini-Hochberg",
                  "holm": "Holm"}
 

@@ -84,10 +84,10 @@ def per_date_warnings(out: FactorOutput, frequency: str, first_index: int, n_pri
     mu, vol = out.premium[sl], out.vol_forecast[sl]
     with np.errstate(invalid="ignore", divide="ignore"):
         sd = np.sqrt(out.premium_var[sl])
-        ratio = np.abs(mu) / sd
         sharpe = mu / vol * math.sqrt(ppy)
-    limit = max(th.noise_sd_multiple, wr.noise_band_z(th))
-    noise = ok & np.isfinite(mu) & np.isfinite(sd) & (sd > 0) & (ratio < limit)
+    noise_at = wr.rule_noise_many(np.where(ok, mu, np.nan), sd, th, vol, ppy)
+    noise = np.zeros(ok.size, bool)
+    noise[list(noise_at)] = True
     years = (n_prior + np.arange(first_index, end) + 1) / ppy
     implausible = (ok & np.isfinite(sharpe) & (years >= th.implausible_min_years)
                    & (np.abs(sharpe) > th.implausible_sharpe))
@@ -107,7 +107,7 @@ def per_date_warnings(out: FactorOutput, frequency: str, first_index: int, n_pri
         i = first_index + j
         found = []
         if noise[j]:
-            found.append(wr.rule_noise(float(mu[j]), float(sd[j]), th, float(vol[j]), ppy))
+            found.append(noise_at[j])
         if implausible[j]:
             found.append(wr.rule_implausible_sharpe(float(sharpe[j]), float(years[j]), th))
         if ambiguous[j]:
