@@ -107,9 +107,9 @@ def one_blas_thread():
 
     Every refit task runs in one, whichever executor runs it: results are then the same in
     process, in local workers and on Dask (threaded reductions may differ in the last
-    bit), and workers do not oversubscribe the cores. Measured on the market fit (12
-    factors x 6,500 days): 8.0 s wall and 15.9 s CPU with two BLAS threads, 8.3 s and
-    8.3 s with one.
+    bit), and workers do not oversubscribe the cores. Measured on the market fit (10
+    factors x 6,500 days, 2 cores): 8.1 s wall with two BLAS threads, 2.3 s with one;
+    its matrices are too small for threads to pay.
     """
     from threadpoolctl import threadpool_limits
 
