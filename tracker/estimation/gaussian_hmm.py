@@ -62,9 +62,15 @@ class HmmParams:
     @property
     def full_covars(self) -> np.ndarray:
         """Covariances as (K, N, N) matrices (hmmlearn's ``covars_``)."""
-        if self.covariance_type == "full":
-            return self.covars
-        return np.einsum("kn,nm->knm", self.covars, np.eye(self.covars.shape[1]))
+        return full_covariances(self.covars, self.covariance_type)
+
+
+def full_covariances(covars, covariance_type: str) -> np.ndarray:
+    """``covars`` as (K, N, N) matrices: as they are when 'full', diagonal ones from the
+    (K, N) variances when 'diag'."""
+    if covariance_type == "full":
+        return covars
+    return np.einsum("kn,nm->knm", covars, np.eye(covars.shape[1]))
 
 
 @dataclass(frozen=True, eq=False)

@@ -135,9 +135,7 @@ class MarketRegimeParams:
     @property
     def covariance_matrices(self) -> np.ndarray:
         """Sigma_k as full matrices, shape (K, N, N)."""
-        if self.covariance_type == "full":
-            return self.covars
-        return np.einsum("kn,nm->knm", self.covars, np.eye(self.n_factors))
+        return gaussian_hmm.full_covariances(self.covars, self.covariance_type)
 
     @property
     def variances(self) -> np.ndarray:
