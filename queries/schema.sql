@@ -25,7 +25,7 @@ CREATE TABLE factor_returns(factor_id VARCHAR, date DATE, ret DOUBLE NOT NULL, d
 
 CREATE TABLE factors(factor_id VARCHAR PRIMARY KEY, "label" VARCHAR NOT NULL, description VARCHAR DEFAULT('') NOT NULL, frequency VARCHAR NOT NULL, is_traded BOOLEAN DEFAULT(true) NOT NULL, is_new BOOLEAN DEFAULT(false) NOT NULL, start_date DATE, declared_by BIGINT, declared_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, CHECK((frequency IN ('daily', 'monthly'))));
 
-CREATE TABLE filter_states(subject_id VARCHAR, model VARCHAR, fit_id BIGINT NOT NULL, through_date DATE NOT NULL, state_json VARCHAR NOT NULL, updated_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, PRIMARY KEY(subject_id, model));
+CREATE TABLE filter_states(subject_id VARCHAR, model VARCHAR, fit_id BIGINT NOT NULL, through_date DATE NOT NULL, state_json VARCHAR USING COMPRESSION Uncompressed NOT NULL, updated_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, PRIMARY KEY(subject_id, model));
 
 CREATE TABLE model_fits(fit_id BIGINT PRIMARY KEY, subject_id VARCHAR NOT NULL, model VARCHAR NOT NULL, status VARCHAR NOT NULL, message VARCHAR DEFAULT('') NOT NULL, params_json VARCHAR DEFAULT('{}') NOT NULL, loglik DOUBLE, n_obs INTEGER DEFAULT(0) NOT NULL, converged BOOLEAN DEFAULT(false) NOT NULL, data_from DATE, data_through DATE, reason VARCHAR DEFAULT('') NOT NULL, fitted_at TIMESTAMP DEFAULT(current_timestamp) NOT NULL, is_current BOOLEAN DEFAULT(true) NOT NULL);
 

@@ -71,3 +71,45 @@ def test_stopping_early_cancels_the_tasks_not_started(tmp_path):
     # the first, two running and the pool's few pre-queued calls (workers + 1) may start;
     # without cancelling, all nine submitted (the window and one more) run
     assert started <= 6, started
+
+
+# ------------------------------------------------------------------ fork_split
+
+
+def test_fork_split_runs_the_parts_apart_and_returns_them_in_order():
+    from tracker.service.executor import fork_split
+
+    big = list(range(100_000))            # a closure over a large local: not pickled, inherited
+    out = fork_split(lambda part: (sum(big[i] for i in part), os.getpid()), [[0, 1], [2, 3], [99_999]])
+    assert [s for s, _ in out] == [1, 5, 99_999]
+    pids = [p for _, p in out]
+    assert pids[0] == os.getpid() and len(set(pids)) == 3      # the first part here, the rest forked
+
+
+def test_fork_split_raises_a_childs_exception_here():
+    import pytest
+
+    from tracker.service.executor import fork_split
+
+    def fail_in_second(part):
+        if part == "b":
+            raise ValueError("bad part b")
+        return part
+
+    with pytest.raises(ValueError, match="bad part b") as info:
+        fork_split(fail_in_second, ["a", "b"])
+    assert any("forked worker" in note for note in getattr(info.value, "__notes__", []))
+
+
+def test_fork_split_reports_a_child_that_dies():
+    import pytest
+
+    from tracker.service.executor import fork_split
+
+    def die_in_second(part):
+        if part == 2:
+            os._exit(3)
+        return part
+
+    with pytest.raises(RuntimeError, match="exit code 3"):
+        fork_split(die_in_second, [1, 2])

@@ -127,6 +127,36 @@ def test_summary_reproduces_the_whole_history_rules(frequency):
     assert s.returns.n == y.size and s.last_date == str(dates[-1])
 
 
+def test_summary_head_and_the_mean_test_before_the_rows_are_appended():
+    # the run reads only a summary's head before its models run (head_from_state), and
+    # takes each mean test with the new returns appended to a copy (mean_test_with): the
+    # same numbers as the summary extended afterwards, bit for bit; the library twin of
+    # that test is test_lag_sums_give_the_library_newey_west_test above
+    from tracker.service.history_summary import head_from_state, mean_test_with
+
+    rng = np.random.default_rng(11)
+    th = wr.WarningThresholds()
+    sizes = sizes_for(th, 21)
+    arrays = _history(rng, 1200)
+    s = HistorySummary.empty(sizes, "daily")
+    s.extend(*(a[:-3] for a in arrays))
+    state = {"history": json.loads(json.dumps(s.to_dict()))}
+    head = head_from_state(state, sizes, "daily")
+    assert head.n_rows == s.n_rows and head.returns.n == s.returns.n
+    before = mean_test_with(head.returns, arrays[1][-3:])
+    assert head.returns.n == s.returns.n                     # the head is left as it was
+    s.extend(*(a[-3:] for a in arrays))
+    after = s.mean_test()
+    assert [before.mean, before.se, before.t_stat, before.p_value, before.lags] == \
+        [after.mean, after.se, after.t_stat, after.p_value, after.lags]
+    # refused where the whole summary is: other tail sizes, another frequency, a lost field
+    assert head_from_state(state, {**sizes, "errors": 7}, "daily") is None
+    assert head_from_state(state, sizes, "monthly") is None
+    lost = {"history": {k: v for k, v in state["history"].items() if k != "errors"}}
+    assert head_from_state(lost, sizes, "daily") is None
+    assert head_from_state(None, sizes, "daily") is None
+
+
 # ------------------------------------------------------------------ the store-level twin
 
 

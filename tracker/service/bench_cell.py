@@ -30,9 +30,9 @@ def timed_update(store, config, executor=None, *, refit=None, only=None) -> dict
     cpu: Counter = Counter()
     n_tasks = [0]
 
-    def observe(out) -> None:
+    def observe(factor_id: str, timings: dict) -> None:
         n_tasks[0] += 1
-        for model, sec in out.timings.items():
+        for model, sec in timings.items():
             cpu[model] += sec
 
     t0 = time.perf_counter()

@@ -44,31 +44,29 @@ from tracker.estimation import warning_rules as wr
 from tracker.service import market as market_mod
 from tracker.service.estimate_io import (
     BOOK_KEY,
-    Book,
     FrameBatch,
     Inputs,
-    premium_columns,
     read_meta,
     read_stamps,
-    regime_columns,
     read_returns,
 )
 from tracker.service.estimate_latest import (
     HISTORY_KEY,
+    SetContext,
+    Writes,
     current_summary,
-    emit_mask,
     has_extras,
-    prior_summary,
+    prepare_writes,
+    prior_head,
+    set_context,
     thresholds,
-    warning_frames,
 )
-from tracker.service.executor import Executor, SerialExecutor, executor_for, one_blas_thread
+from tracker.service.executor import Executor, SerialExecutor, executor_for, fork_split, one_blas_thread
 from tracker.service.factor_models import (
     FACTOR_MODELS,
     HINDSIGHT_ROWS,
     MODEL_PREMIUM,
     MODEL_REGIMES,
-    PERIODS_PER_YEAR,
     FactorOutput,
     FactorTask,
     dumps,
@@ -199,7 +197,7 @@ def _read_inputs(store: Store, config: Config, refit: set[str] | None = None,
         full = {p.factor_id for p in plans if p.kind != "advance"}
         history = {p.factor_id for p in plans if p.kind in ("refit", "rederive")}
         for p in plans:
-            if p.kind == "advance" and (prior_summary(inp, p.factor_id, sizes) is None
+            if p.kind == "advance" and (prior_head(inp, p.factor_id, sizes) is None
                                         or not has_extras(inp.states.get((p.factor_id, MODEL_PREMIUM)))):
                 full.add(p.factor_id)        # fallback: the whole-history path
                 history.add(p.factor_id)
@@ -245,7 +243,7 @@ def update(
     only: set[str] | None = None,
     progress: Progress | None = None,
     executor: Executor | None = None,
-    observer: Callable[[FactorOutput], None] | None = None,
+    observer: Callable[[str, dict], None] | None = None,
     cold: bool = False,
 ) -> RunSummary:
     """Bring estimates up to date with the stored data.
@@ -259,8 +257,9 @@ def update(
     progress : callable(done, total, label), optional
     executor : Executor, optional
         Where the fits run (default: local processes for refits, this process otherwise).
-    observer : callable(FactorOutput), optional
-        Sees every factor's output before it is written (the benchmark reads its timings).
+    observer : callable(factor_id, timings), optional
+        Sees every factor's model timings (seconds per model) before its results are
+        written; the benchmark sums them.
     cold : bool
         Refits start afresh (multi-start, default starting points) instead of from the
         parameters in force, and a market refit re-selects its number of states. A
@@ -352,28 +351,45 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
                                        rederive=any(p.kind == "rederive" for p in plans), fit=market_fit)
         return market
 
+    sctx = set_context(config, inp, plans)
     for out in runner.map(run_refit_item, work, ordered=False):
         if not isinstance(out, FactorOutput):
             market_fit = out
             continue
         outputs[out.factor_id] = out
         if observer is not None:
-            observer(out)
+            observer(out.factor_id, out.timings)
         done += 1
         if progress:
             progress(done, total, f"fitted {out.factor_id}")
         if stream and len(outputs) >= STREAM_CHUNK and (market_task is None or market_fit is not None):
             rows += _write(store, config, inp, [by_id[f] for f in outputs], outputs, market_once(),
-                           started, detail)
+                           started, detail, sctx=sctx)
             outputs.clear()
     lap("fits")
-    for out in SerialExecutor().map(run_factor, light):
-        outputs[out.factor_id] = out
-        if observer is not None:
-            observer(out)
-        done += 1
-        if progress and (done % 50 == 0 or done == len(tasks)):
-            progress(done, total, f"filtered {out.factor_id}")
+    # the run's plans still to write, in plan order: the refits not written as they came
+    # (outputs), then the advances, prepared whole here (models and warnings, no store)
+    rest = [p for p in plans if p.factor_id in outputs]
+    t_prep = time.perf_counter()
+    writes = prepare_writes(config, inp, rest, outputs, sctx)
+    detail["write_warnings"] = detail.get("write_warnings", 0.0) + time.perf_counter() - t_prep
+    light_plans = [by_id[t.factor_id] for t in light]
+    parts = _advance_parts(config, light)
+
+    def advance(part: list[tuple[Plan, FactorTask]]) -> tuple[dict, Writes]:
+        outs = {t.factor_id: run_factor(t) for _, t in part}
+        # only what the caller needs travels back from a forked part: the writes and timings
+        return {f: o.timings for f, o in outs.items()}, prepare_writes(config, inp, [p for p, _ in part], outs, sctx)
+
+    for part_timings, part_writes in fork_split(advance, _split(list(zip(light_plans, light)), parts)):
+        writes.join(part_writes)
+        for fid, model_timings in part_timings.items():
+            if observer is not None:
+                observer(fid, model_timings)
+            done += 1
+            if progress and (done % 50 == 0 or done == len(tasks)):
+                progress(done, total, f"filtered {fid}")
+    rest += light_plans
     lap("filters")
 
     last_market = market_once()
@@ -382,9 +398,8 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
         return RunSummary(kinds={}, timings=timings)
     if progress:
         progress(total, total, "writing results")
-    rest = [p for p in plans if p.factor_id in outputs]
     if rest or last_market is not None:
-        rows += _write(store, config, inp, rest, outputs, last_market, started, detail)
+        rows += _write(store, config, inp, rest, outputs, last_market, started, detail, writes=writes)
     lap("write")
     timings.update(detail)
     kinds = {p.factor_id: p.kind for p in plans}
@@ -395,6 +410,26 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
 
 # factors per write of a large refit (see _estimate_and_write)
 STREAM_CHUNK = 24
+# advances per forked part of a day's update: below this a part costs more in the fork
+# and in returning its results (~10 ms) than it saves (~1.5 ms a factor)
+ADVANCE_PART_MIN = 64
+
+
+def _advance_parts(config: Config, light: list) -> int:
+    """How many processes share the advances: one per core (``[service] workers``), each
+    with at least ADVANCE_PART_MIN factors. Advances never go to a Dask cluster: a day's
+    update is a second of work, less than shipping it."""
+    workers = config.service.workers or os.cpu_count() or 1
+    return max(1, min(workers, len(light) // ADVANCE_PART_MIN))
+
+
+def _split(items: list, parts: int) -> list[list]:
+    """``items`` in ``parts`` contiguous runs of near-equal length (none empty)."""
+    if not items:
+        return []
+    parts = max(1, min(parts, len(items)))
+    bounds = np.linspace(0, len(items), parts + 1).round().astype(int)
+    return [items[a:b] for a, b in zip(bounds[:-1], bounds[1:])]
 
 
 def run_refit_item(item):
@@ -406,63 +441,18 @@ def run_refit_item(item):
         return run_factor_with_warnings(item)
 
 
-def _book(inp: Inputs, plan: Plan, out: FactorOutput, codes: dict) -> Book:
-    """The row book stored with a factor's new premium state (see :class:`Book`)."""
-    row = inp.rows[plan.factor_id]
-    refitted = any(rec.model == MODEL_PREMIUM for rec in out.fits)
-    latest = codes.get(plan.factor_id)
-    if latest is None and plan.kind != "rederive":   # nothing stored at a new date: the codes stand
-        old = inp.books.get((plan.factor_id, MODEL_PREMIUM))
-        latest = old.codes if old is not None else None
-    # a re-derivation that stored no rows superseded the latest ones: None, so the next
-    # run reads the codes in force from the store
-    return Book(through=str(row.last), drop_seen=int(inp.drop_seen), vintage=int(plan.vintage),
-                n_rows=row.n_rows, n_finite=row.n_finite, first=str(row.first),
-                last_finite=None if row.last_finite is None else str(row.last_finite),
-                since_fit=0 if refitted else row.since_fit,
-                codes=None if latest is None else tuple(sorted(latest)))
+def _write(store, config, inp, plans, outputs, market, started, timings: dict | None = None, *,
+           sctx: SetContext | None = None, writes: Writes | None = None) -> int:
+    """Store the plans' results and the market's in one transaction.
 
-
-def _latest_codes(plans, outputs, warn_frame) -> dict:
-    """Per factor that stores rows in this run: the warning codes at its newest stored date."""
-    latest = {}
-    for plan in plans:
-        out = outputs.get(plan.factor_id)
-        m = emit_mask(out, plan) if out is not None else None
-        if m is not None and m.any():
-            latest[plan.factor_id] = out.dates[m].max()
-    codes = {fid: set() for fid in latest}
-    if warn_frame is not None and len(warn_frame):
-        days = warn_frame["date"].to_numpy().astype("datetime64[D]")
-        subjects = warn_frame["subject_id"].to_numpy()
-        if latest:
-            which, uniq = pd.factorize(subjects)
-            newest = np.array([latest.get(u, np.datetime64("NaT")) for u in uniq], dtype="datetime64[D]")
-            on_latest = np.flatnonzero(days == newest[which])   # NaT (a factor not stored) never equals
-            code_col = warn_frame["code"].to_numpy()
-            for i in on_latest.tolist():
-                codes[subjects[i]].add(str(code_col[i]))
-    return codes
-
-
-def _state_json(inp: Inputs, plan: Plan, out: FactorOutput, prep, book: Book) -> str:
-    states = {**out.states, **(prep.extra_states if prep else {})}
-    states.pop(HISTORY_KEY, None)
-    states[BOOK_KEY] = book.to_dict()
-    summary = prep.store if prep is not None else None
-    if summary is None and plan.emit_from is None:
-        old = inp.states.get((plan.factor_id, MODEL_PREMIUM))
-        if old and old["state"].get(HISTORY_KEY):
-            states[HISTORY_KEY] = old["state"][HISTORY_KEY]    # nothing stored: unchanged
-    if summary is not None:
-        states[HISTORY_KEY] = summary.to_dict()
-    return dumps(states)
-
-
-def _write(store, config, inp, plans, outputs, market, started, timings: dict | None = None) -> int:
+    ``writes``: the plans' results already prepared (a split advance prepares them in its
+    workers); otherwise they are prepared here from ``outputs`` against ``sctx`` (the
+    run's set context, taken here when not given).
+    """
     t0 = time.perf_counter()
-    warn_frame, prepared = warning_frames(config, inp, plans, outputs)
-    codes = _latest_codes(plans, outputs, warn_frame)
+    if writes is None:
+        writes = prepare_writes(config, inp, plans, outputs, sctx or set_context(config, inp, plans))
+    warn_frame = writes.warning_frame()
     t1 = time.perf_counter()
     state_rows, run_rows = [], []
     with store.transaction() as con:
@@ -472,10 +462,10 @@ def _write(store, config, inp, plans, outputs, market, started, timings: dict | 
         regimes = FrameBatch(con, "estimation.insert_regime_frame")
         for plan in plans:
             fid = plan.factor_id
-            out = outputs[fid]
+            pw = writes.plans[fid]
             row = inp.rows[fid]
             fit_ids = {}
-            for rec in out.fits:
+            for rec in pw.fits:
                 fit_id = con.execute(sql("estimation.next_fit_id")).fetchone()[0]
                 con.execute(sql("estimation.retire_fits"), [fid, rec.model])
                 con.execute(sql("estimation.insert_fit"), [
@@ -491,15 +481,10 @@ def _write(store, config, inp, plans, outputs, market, started, timings: dict | 
                 regimes.flush()
                 for q in ("supersede_premium", "supersede_regime", "supersede_warnings"):
                     con.execute(sql(f"estimation.{q}"), [fid, _d(plan.emit_from)])
-            m = emit_mask(out, plan)
-            premium.add({"factor_id": fid, "vintage": plan.vintage, "fit_id": premium_fit},
-                        premium_columns(out, m, PERIODS_PER_YEAR[inp.freq[fid]]))
-            if out.regime_filtered is not None:
-                regimes.add({"subject_id": fid, "vintage": plan.vintage, "fit_id": regime_fit},
-                            regime_columns(out.dates[m], out.regime_filtered[m], out.regime_predicted[m]))
-            state_rows.append((fid, MODEL_PREMIUM, premium_fit or 0, _d(row.last),
-                               _state_json(inp, plan, out, prepared.get(fid), _book(inp, plan, out, codes)),
-                               inp.read_at))
+            premium.add({"factor_id": fid, "vintage": plan.vintage, "fit_id": premium_fit}, pw.premium)
+            if pw.regimes is not None:
+                regimes.add({"subject_id": fid, "vintage": plan.vintage, "fit_id": regime_fit}, pw.regimes)
+            state_rows.append((fid, MODEL_PREMIUM, premium_fit or 0, _d(row.last), pw.state_json, inp.read_at))
             run_rows.append((plan.kind, plan.reason, fid, _d(plan.emit_from) if plan.emit_from is not None else None,
                              _d(row.last), started, "ok", ""))
         premium.flush()

@@ -10,7 +10,6 @@ states, runs), so a day's update of hundreds of factors is a handful of statemen
 
 from __future__ import annotations
 
-import dataclasses
 import json
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
@@ -87,7 +86,7 @@ class Book:
         return None not in (self.n_rows, self.n_finite, self.first, self.since_fit)
 
     def to_dict(self) -> dict:
-        d = dataclasses.asdict(self)
+        d = dict(self.__dict__)           # its fields (plain values: asdict's deep copy costs more)
         d["codes"] = None if self.codes is None else list(self.codes)
         return d
 

@@ -81,6 +81,9 @@ class LagSums:
             if len(tail) > MAX_LAG:
                 del tail[0]
 
+    def copy(self) -> LagSums:
+        return LagSums(self.n, self.total, list(self.cross), list(self.head), list(self.tail))
+
     def values_if_short(self) -> np.ndarray | None:
         """The whole series when it fits in ``head`` (then the library is used directly)."""
         return np.asarray(self.head, dtype=float) if self.n <= MAX_LAG else None
@@ -130,6 +133,19 @@ class LagSums:
     @classmethod
     def from_dict(cls, d: dict) -> LagSums:
         return cls(int(d["n"]), float(d["total"]), unpack(d["cross"]), unpack(d["head"]), unpack(d["tail"]))
+
+
+def mean_test_with(sums: LagSums, returns: np.ndarray) -> sig.MeanTest | None:
+    """The mean test of a summary's returns once ``returns`` are appended (as
+    :meth:`HistorySummary.extend` appends them), leaving ``sums`` as they are: the
+    set-level tests of a run come before its models run."""
+    vals = np.asarray(returns, dtype=float)
+    vals = vals[np.isfinite(vals)]
+    if sums.n == 0:
+        return LagSums.of(vals).mean_test()
+    sums = sums.copy()
+    sums.extend(vals)
+    return sums.mean_test()
 
 
 def sizes_for(th: wr.WarningThresholds, hindsight_rows: int) -> dict | None:
@@ -252,6 +268,9 @@ class HistorySummary:
     def mean_test(self) -> sig.MeanTest | None:
         return self.returns.mean_test()
 
+    def mean_test_with(self, returns: np.ndarray) -> sig.MeanTest | None:
+        return mean_test_with(self.returns, returns)
+
     def drift(self, window: int) -> wr.DriftStatistic | None:
         """:func:`wr.predictive_loglik_drift` of the whole log-likelihood history."""
         w = int(window)
@@ -358,15 +377,48 @@ def summary_of(sizes: dict, frequency: str, dates, returns, premium, premium_var
     return s
 
 
-def summary_from_state(state: dict | None, sizes: dict | None, frequency: str) -> HistorySummary | None:
-    """The stored summary when it was made under the same tail sizes, else None."""
+def _usable(state: dict | None, sizes: dict | None, frequency: str) -> dict | None:
     if not state or sizes is None:
         return None
     d = state.get("history")
     if not d or d.get("version") != VERSION or d.get("sizes") != sizes or d.get("frequency") != frequency:
         return None
+    return d
+
+
+def summary_from_state(state: dict | None, sizes: dict | None, frequency: str) -> HistorySummary | None:
+    """The stored summary when it was made under the same tail sizes, else None."""
+    d = _usable(state, sizes, frequency)
+    if d is None:
+        return None
     try:
         return HistorySummary.from_dict(d)
+    except (KeyError, TypeError, ValueError):
+        return None
+
+
+@dataclass(frozen=True)
+class SummaryHead:
+    """The part of a stored summary a run needs before its models run: the row count it
+    describes and the returns' sums (the set-level mean tests). Reading it leaves the
+    other tails unparsed, for the process that advances the factor."""
+
+    n_rows: int
+    returns: LagSums
+
+
+def head_from_state(state: dict | None, sizes: dict | None, frequency: str) -> SummaryHead | None:
+    """:func:`summary_from_state`'s head, None when the summary is missing, was made under
+    other tail sizes or lacks a field; tails that do not decode (a damaged state, not
+    something this program writes) fail where the factor is advanced."""
+    d = _usable(state, sizes, frequency)
+    if d is None:
+        return None
+    try:
+        for key in ("loglik_base", "loglik_window", "errors", "premium", "premium_var", "regimes", "gap",
+                    "run", "spacing", "last_date"):
+            d[key]                              # present (their contents are read where used)
+        return SummaryHead(int(d["n_rows"]), LagSums.from_dict(d["returns"]))
     except (KeyError, TypeError, ValueError):
         return None
 
@@ -379,4 +431,5 @@ def _none(x: float):
     return None if math.isnan(x) else x
 
 
-__all__ = ["HistorySummary", "LagSums", "MAX_LAG", "pack", "sizes_for", "summary_from_state", "summary_of", "unpack"]
+__all__ = ["HistorySummary", "LagSums", "MAX_LAG", "SummaryHead", "head_from_state", "mean_test_with", "pack",
+           "sizes_for", "summary_from_state", "summary_of", "unpack"]

@@ -1,0 +1,125 @@
+"""A day's update of many factors runs in forked parts: the same store as one process.
+
+Reference twin: the same advance in this process alone (``ADVANCE_PART_MIN`` above the
+number of factors). Every estimate, warning and filter state must be identical, bit for
+bit: the parts run the same functions on the same inputs, and the set-level facts (the
+tracked-set mean tests and their adjustment) are taken once, before the parts.
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+
+import pandas as pd
+import pytest
+
+from tracker.service import estimate as est
+from tracker.service import executor as executor_mod
+from tracker.service.estimate_latest import set_context
+from tracker.service.history_summary import summary_from_state
+from tracker.store.bootstrap import open_store
+
+TABLES = {
+    "premium_estimates": "SELECT * EXCLUDE (computed_at) FROM premium_estimates ORDER BY ALL",
+    "regime_estimates": "SELECT * EXCLUDE (computed_at) FROM regime_estimates ORDER BY ALL",
+    "warnings": "SELECT * EXCLUDE (computed_at) FROM warnings ORDER BY ALL",
+    "filter_states": "SELECT subject_id, model, fit_id, through_date, state_json FROM filter_states ORDER BY ALL",
+    "runs": "SELECT kind, reason, subjects, from_date, through_date, status FROM estimation_runs ORDER BY ALL",
+}
+
+
+def _append_days(store, days) -> None:
+    from tracker.seed_db import scenario as sc
+
+    rows = sc.generate().factor_returns
+    rows = rows[rows["date"].isin(days)]
+    with store.transaction() as con:
+        con.register("incoming_frame", rows)
+        con.execute("INSERT INTO factor_returns (factor_id, date, ret) SELECT factor_id, date, ret FROM incoming_frame")
+        con.unregister("incoming_frame")
+
+
+def _advanced(template, folder, min_per_part, monkeypatch):
+    shutil.copytree(template.parent, folder)
+    store, config = open_store(folder / "store.duckdb")
+    monkeypatch.setattr(est, "ADVANCE_PART_MIN", min_per_part)
+    from tracker.seed_db import scenario as sc
+
+    for day in sc.held_back_days(sc.generate())[:2]:
+        _append_days(store, [day])
+        summary = est.update(store, config)
+        assert set(summary.kinds.values()) <= {"advance"} and summary.rows_written > 0
+    with store.connect() as con:
+        return {name: con.execute(q).df() for name, q in TABLES.items()}
+
+
+def test_split_advance_writes_what_one_process_writes(estimated_demo_template, tmp_path, monkeypatch):
+    calls = []
+    original = executor_mod.fork_split
+
+    def counting(fn, parts):
+        calls.append(len(parts))
+        return original(fn, parts)
+
+    monkeypatch.setattr(est, "fork_split", counting)
+    one = _advanced(estimated_demo_template, tmp_path / "one", 10**6, monkeypatch)
+    assert calls == [1, 1]                                  # one part: this process
+    calls.clear()
+    split = _advanced(estimated_demo_template, tmp_path / "split", 1, monkeypatch)
+    assert calls == [2, 2]                                  # [service] workers = 2 parts
+    for name in TABLES:
+        pd.testing.assert_frame_equal(one[name], split[name], check_exact=True, obj=name)
+    assert len(split["warnings"]) > 0
+
+
+def test_set_level_tests_are_the_stored_summaries_tests(estimated_demo_store):
+    # set_context takes each advancing factor's mean test before its models run, from the
+    # stored returns' sums and the new returns; the summary the advance then stores must
+    # give the same test (the whole-history twin of the summary is held in
+    # test_incremental_path.py against significance.newey_west_mean)
+    from tracker.seed_db import scenario as sc
+
+    store, config = estimated_demo_store
+    _append_days(store, sc.held_back_days(sc.generate())[:1])
+    inp, plans = est._read_inputs(store, config)
+    assert plans and {p.kind for p in plans} == {"advance"}
+    sctx = set_context(config, inp, plans)
+    est.update(store, config)
+    from tracker.service.estimate_latest import thresholds
+    from tracker.service.factor_models import HINDSIGHT_ROWS
+    from tracker.service.history_summary import sizes_for
+
+    sizes = sizes_for(thresholds(config), HINDSIGHT_ROWS)
+    with store.connect() as con:
+        rows = con.execute("SELECT subject_id, state_json FROM filter_states WHERE model = 'premium'").fetchall()
+    checked = 0
+    for fid, text in rows:
+        if fid not in {p.factor_id for p in plans}:
+            continue
+        stored = summary_from_state(json.loads(text), sizes, inp.freq[fid]).mean_test()
+        want = sctx.tests[fid]
+        assert (stored.status, stored.n_obs, stored.lags) == (want.status, want.n_obs, want.lags)
+        assert [stored.mean, stored.se, stored.t_stat, stored.p_value] == [want.mean, want.se, want.t_stat, want.p_value]
+        checked += 1
+    assert checked == len(plans)
+
+
+def test_parts_split_evenly_and_keep_order():
+    items = list(range(10))
+    parts = est._split(items, 3)
+    assert [len(p) for p in parts] in ([3, 4, 3], [4, 3, 3], [3, 3, 4])
+    assert sum(parts, []) == items
+    assert est._split(items, 20) == [[i] for i in items]       # never an empty part
+    assert est._split([], 2) == []
+
+
+@pytest.mark.parametrize("n, workers, want", [(500, 2, 2), (100, 2, 1), (1000, 4, 4), (10, 2, 1)])
+def test_advance_parts_need_enough_factors_each(n, workers, want):
+    import dataclasses
+
+    from tracker.config import config_from_dict
+
+    config = config_from_dict({})
+    config = dataclasses.replace(config, service=dataclasses.replace(config.service, workers=workers))
+    assert est._advance_parts(config, list(range(n))) == want      # ADVANCE_PART_MIN = 64
