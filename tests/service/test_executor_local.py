@@ -113,3 +113,23 @@ def test_fork_split_reports_a_child_that_dies():
 
     with pytest.raises(RuntimeError, match="exit code 3"):
         fork_split(die_in_second, [1, 2])
+
+
+def test_fork_split_children_write_nothing_to_the_parents_terminal(capfd):
+    import sys
+    import warnings
+
+    from tracker.service.executor import fork_split
+
+    def noisy(part):
+        print(f"printed by part {part}")
+        print(f"to stderr by part {part}", file=sys.stderr)
+        warnings.warn(f"warned by part {part}")
+        return part
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")        # this process's own part: not the point here
+        assert fork_split(noisy, [0, 1, 2]) == [0, 1, 2]
+    out, err = capfd.readouterr()
+    assert "part 0" in out                     # the part run here prints as usual
+    assert "part 1" not in out + err and "part 2" not in out + err

@@ -20,6 +20,8 @@ from tracker.service.estimate_latest import set_context
 from tracker.service.history_summary import summary_from_state
 from tracker.store.bootstrap import open_store
 
+from drop_helpers import append_scenario_days as _append_days
+
 TABLES = {
     "premium_estimates": "SELECT * EXCLUDE (computed_at) FROM premium_estimates ORDER BY ALL",
     "regime_estimates": "SELECT * EXCLUDE (computed_at) FROM regime_estimates ORDER BY ALL",
@@ -27,17 +29,6 @@ TABLES = {
     "filter_states": "SELECT subject_id, model, fit_id, through_date, state_json FROM filter_states ORDER BY ALL",
     "runs": "SELECT kind, reason, subjects, from_date, through_date, status FROM estimation_runs ORDER BY ALL",
 }
-
-
-def _append_days(store, days) -> None:
-    from tracker.seed_db import scenario as sc
-
-    rows = sc.generate().factor_returns
-    rows = rows[rows["date"].isin(days)]
-    with store.transaction() as con:
-        con.register("incoming_frame", rows)
-        con.execute("INSERT INTO factor_returns (factor_id, date, ret) SELECT factor_id, date, ret FROM incoming_frame")
-        con.unregister("incoming_frame")
 
 
 def _advanced(template, folder, min_per_part, monkeypatch):

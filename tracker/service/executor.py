@@ -168,6 +168,7 @@ def fork_split(fn: Callable[[Any], Any], parts: list) -> list:
 
 
 def _forked_part(fn, part, send) -> None:
+    _leave_the_parent_alone()
     try:
         try:
             result = (True, fn(part))
@@ -180,3 +181,25 @@ def _forked_part(fn, part, send) -> None:
             send.send((False, RuntimeError(f"a forked worker's result could not be returned: {exc!r}")))
     finally:
         send.close()
+
+
+def _leave_the_parent_alone() -> None:
+    """A forked part writes nothing to the parent's terminal and takes none of its signals.
+
+    Under the interface the parent's ``sys.stdout``/``sys.stderr`` are the UI's capture
+    objects (a warning written through them from a child, with no event loop there, could
+    block), and the parent's signal wake-up descriptor is shared: a signal handled in the
+    child would be read by the UI's loop as its own. The child gets the null device and
+    the default handlers; its result or exception still travels back through the pipe.
+    """
+    import signal
+
+    try:
+        signal.set_wakeup_fd(-1)
+    except (ValueError, OSError):
+        pass
+    for sig in (signal.SIGTERM, signal.SIGHUP):
+        signal.signal(sig, signal.SIG_DFL)
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    sink = open(os.devnull, "w")
+    sys.stdout = sys.stderr = sink
