@@ -135,9 +135,9 @@ def fork_split(fn: Callable[[Any], Any], parts: list) -> list:
     pickled through a pipe. A child's exception is raised here. Serial where fork is not
     the start method (see :func:`worker_context`).
     """
-    if len(parts) <= 1 or worker_context() is None:
-        return [fn(p) for p in parts]
     ctx = worker_context()
+    if len(parts) <= 1 or ctx is None:
+        return [fn(p) for p in parts]
     children = []
     finished = False
     try:

@@ -136,21 +136,16 @@ def _run_batch(tasks: list[FactorTask], rows: list[dict]) -> list[FactorOutput]:
     share = {MODEL_VOL: (t1 - t0) / n, MODEL_PREMIUM: (t2 - t1) / n, "extras": (t3 - t2) / n,
              MODEL_REGIMES: (t4 - t3) / n, MODEL_REGIME_PREMIUM: (t5 - t4) / n}
     outs = []
-    for i, (task, s) in enumerate(zip(tasks, (t.states for t in tasks))):
-        rows_i = rows[i]
-
-        def step(st: dict, mean: float, var: float) -> dict:
-            return FilterState(mean=float(mean), var=float(var), n_rows=int(st["n_rows"]) + 1,
-                               n_obs=int(st["n_obs"]) + 1, diffuse=False).to_dict()
-
+    for i, task in enumerate(tasks):
+        s = task.states
         states = dict(s)
         vs = s[MODEL_VOL]
         states[MODEL_VOL] = VarianceState(h_next=float(h_next[i]), n_obs=int(vs["n_obs"]) + 1, started=True,
                                           sum_sq=float(vs["sum_sq"])).to_dict()
-        states[MODEL_PREMIUM] = step(s[MODEL_PREMIUM], ll["mean"][i], ll["var"][i])
-        states[STATE_Q_HALF] = step(s[STATE_Q_HALF], half["mean"][i], half["var"][i])
-        states[STATE_Q_DOUBLE] = step(s[STATE_Q_DOUBLE], double["mean"][i], double["var"][i])
-        states[STATE_TAIL] = {"prior": step(s[STATE_TAIL]["prior"], prior["mean"][i], prior["var"][i]),
+        states[MODEL_PREMIUM] = _one_row_later(s[MODEL_PREMIUM], ll["mean"][i], ll["var"][i])
+        states[STATE_Q_HALF] = _one_row_later(s[STATE_Q_HALF], half["mean"][i], half["var"][i])
+        states[STATE_Q_DOUBLE] = _one_row_later(s[STATE_Q_DOUBLE], double["mean"][i], double["var"][i])
+        states[STATE_TAIL] = {"prior": _one_row_later(s[STATE_TAIL]["prior"], prior["mean"][i], prior["var"][i]),
                               "y": ty[i].tolist(), "h": th[i].tolist()}
         rstate = s[MODEL_REGIMES]
         states[MODEL_REGIMES] = RegimeFilterState(predicted[i], filtered[i], int(rstate["n_obs"]) + 1,
@@ -162,7 +157,7 @@ def _run_batch(tasks: list[FactorTask], rows: list[dict]) -> list[FactorOutput]:
             n_obs=int(ks["n_obs"]) + 1, diffuse=False).to_dict()
         outs.append(FactorOutput(
             factor_id=task.factor_id, fits=(), params=dict(task.params), states=states,
-            dates=np.asarray(task.dates), returns=np.array([rows_i["y"]]),
+            dates=np.asarray(task.dates), returns=y[i:i + 1],
             premium=ll["mean"][i:i + 1], premium_var=ll["var"][i:i + 1],
             forecast_var=forecast_var[i:i + 1], vol_forecast=vol_forecast[i:i + 1],
             std_error=ll["std_error"][i:i + 1], loglik_t=ll["loglik_t"][i:i + 1], snr=snr[i:i + 1],
@@ -174,3 +169,9 @@ def _run_batch(tasks: list[FactorTask], rows: list[dict]) -> list[FactorOutput]:
             timings=dict(share),
         ))
     return outs
+
+
+def _one_row_later(state: dict, mean: float, var: float) -> dict:
+    """A local-level filter state (dict) after one more valid row ending at ``mean``, ``var``."""
+    return FilterState(mean=float(mean), var=float(var), n_rows=int(state["n_rows"]) + 1,
+                       n_obs=int(state["n_obs"]) + 1, diffuse=False).to_dict()

@@ -268,9 +268,6 @@ class HistorySummary:
     def mean_test(self) -> sig.MeanTest | None:
         return self.returns.mean_test()
 
-    def mean_test_with(self, returns: np.ndarray) -> sig.MeanTest | None:
-        return mean_test_with(self.returns, returns)
-
     def drift(self, window: int) -> wr.DriftStatistic | None:
         """:func:`wr.predictive_loglik_drift` of the whole log-likelihood history."""
         w = int(window)
