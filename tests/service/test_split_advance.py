@@ -114,3 +114,29 @@ def test_advance_parts_need_enough_factors_each(n, workers, want):
     config = config_from_dict({})
     config = dataclasses.replace(config, service=dataclasses.replace(config.service, workers=workers))
     assert est._advance_parts(config, list(range(n))) == want      # ADVANCE_PART_MIN = 64
+
+
+def test_update_holds_the_store_for_a_day_and_lets_go_before_fits(estimated_demo_store):
+    # a day's advance keeps one open of the store from its read to its exposures
+    # (Store.hold); a run with fits to do closes it first, so another process is not kept
+    # out of the file for the minutes a refit can take
+    from tracker.seed_db import scenario as sc
+
+    store, config = estimated_demo_store
+    held_during = []
+    _append_days(store, sc.held_back_days(sc.generate())[:1])
+    summary = est.update(store, config, observer=lambda fid, t: held_during.append(store.is_held))
+    assert set(summary.kinds.values()) == {"advance"}
+    assert held_during and all(held_during)
+    assert not store.is_held                                  # closed when the update ends
+
+    class Watching(executor_mod.SerialExecutor):
+        def map(self, fn, items, *, ordered=True):
+            held_during.append(("map", store.is_held))
+            return super().map(fn, items, ordered=ordered)
+
+    held_during.clear()
+    summary = est.update(store, config, refit={"VALUE"}, executor=Watching())
+    assert summary.kinds.get("VALUE") == "refit"
+    assert held_during[0] == ("map", False)
+    assert not store.is_held

@@ -204,7 +204,10 @@ def process_inbox(store: Store, config: Config, on_applied: OnApplied | None = N
     for path in pending_files(folders["inbox"]):
         got = claim(path, folders[PROCESSING])
         if got is not None:
-            done(process_claimed(store, config, got[0], got[1], today=today))
+            # one open of the store a file (Store.hold); between files another process may
+            # take the store
+            with store.hold():
+                done(process_claimed(store, config, got[0], got[1], today=today))
     return outcomes
 
 

@@ -265,7 +265,9 @@ def update(
         parameters in force, and a market refit re-selects its number of states. A
         first fit is always cold.
     """
-    with estimation_lock(store) as acquired:
+    # held: a day's read, write and exposures share one open of the store; a run with fits
+    # to do lets go of it before they start (see Store.hold)
+    with estimation_lock(store) as acquired, store.hold():
         if not acquired:
             return RunSummary(skipped="another process is estimating; its results will appear when it finishes")
         summary = _update_locked(store, config, refit, only, progress, executor, observer, cold)
@@ -366,6 +368,8 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
         return market
 
     sctx = set_context(config, inp, plans)
+    if work:
+        store.let_go()      # fits take seconds to minutes: other processes may use the store meanwhile
     for out in runner.map(run_refit_item, work, ordered=False):
         if not isinstance(out, FactorOutput):
             market_fit = out

@@ -7,6 +7,14 @@ runs between connections, never while one is open. When another process holds th
 opening is retried with back-off for ``busy_timeout`` seconds and then fails with one
 clear line (:class:`StoreBusy`). Inside one process a lock serialises access, so worker
 threads never hold two connections to the file at once.
+
+A short run of such units -- the daily cycle of applying a drop and advancing the
+estimates, about a second -- may *hold* the store (:meth:`Store.hold`): one connection
+stays open for the whole run and every unit inside it takes a cursor on it, so the file
+is opened and checkpointed once instead of once a unit (each open of a large store costs
+~0.02 s). Other processes wait at most ``busy_timeout`` seconds for the file, so nothing
+holds it for long: a run with fits to do lets go first (:meth:`Store.let_go`), and a
+hold older than HOLD_LIMIT_S seconds lets go at its next unit of work.
 """
 
 from __future__ import annotations
@@ -24,6 +32,9 @@ import duckdb
 from tracker.store.errors import StoreBusy, StoreError
 from tracker.store.sqlfiles import migrations, sql
 
+# longest a hold keeps the store before the next unit lets go (a day's drop and update
+# take about a second)
+HOLD_LIMIT_S = 3.0
 _LOCK_MARKERS = ("could not set lock", "conflicting lock", "lock on file")
 _process_locks: dict[str, threading.RLock] = {}
 _process_locks_guard = threading.Lock()
@@ -58,6 +69,9 @@ class Store:
         self.busy_timeout = float(busy_timeout)
         self.memory_limit_mb = int(memory_limit_mb)
         self._lock = _lock_for(self.path)
+        self._held: duckdb.DuckDBPyConnection | None = None
+        self._held_since = 0.0
+        self._units = 0                 # units of work open now (nested in this thread)
 
     @property
     def folder(self) -> Path:
@@ -68,12 +82,19 @@ class Store:
 
     @contextmanager
     def connect(self) -> Iterator[duckdb.DuckDBPyConnection]:
-        """Open the store for one short unit of work and close it afterwards."""
+        """Open the store for one short unit of work and close it afterwards.
+
+        Inside :meth:`hold` the unit gets a cursor on the held connection instead.
+        """
         with self._lock:
-            con = self._open_with_retry()
+            if self._held is not None and self._units == 0 and time.monotonic() - self._held_since > HOLD_LIMIT_S:
+                self.let_go()
+            con = self._held.cursor() if self._held is not None else self._open_with_retry()
+            self._units += 1
             try:
                 yield con
             finally:
+                self._units -= 1
                 con.close()
 
     @contextmanager
@@ -87,6 +108,38 @@ class Store:
                 con.execute("ROLLBACK")
                 raise
             con.execute("COMMIT")
+
+    @contextmanager
+    def hold(self) -> Iterator[None]:
+        """Keep the store open across the units of work inside (see the module notes).
+
+        Nested holds share the outer one's connection; the hold that opened it closes it
+        (and with it DuckDB checkpoints once), unless :meth:`let_go` already did. A hold
+        is only a saving, never a lock: after HOLD_LIMIT_S seconds the next unit lets go
+        first, so a long backlog of drop files goes back to short connections and other
+        processes get their turns; a nested hold then opens afresh.
+        """
+        with self._lock:
+            opened_here = self._held is None
+            if opened_here:
+                self._held = self._open_with_retry()
+                self._held_since = time.monotonic()
+        try:
+            yield
+        finally:
+            if opened_here:
+                self.let_go()
+
+    def let_go(self) -> None:
+        """Close a held connection now; later units open their own, as outside a hold."""
+        with self._lock:
+            con, self._held = self._held, None
+            if con is not None:
+                con.close()
+
+    @property
+    def is_held(self) -> bool:
+        return self._held is not None
 
     def _open_with_retry(self) -> duckdb.DuckDBPyConnection:
         deadline = time.monotonic() + self.busy_timeout

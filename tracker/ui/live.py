@@ -13,7 +13,8 @@ A pass, run in a worker thread every ``[ui] refresh_s`` seconds:
 4. reloads the board again after an update.
 
 Every store access is one short connection (``Store.connect``), so a second process on
-the same store works. Stopping: :attr:`LiveLoop.stop` is checked at every progress step
+the same store works; a pass holds the store open across them (``Store.hold``: ~1 s for a
+day's drop and update), letting go before any refit. Stopping: :attr:`LiveLoop.stop` is checked at every progress step
 and between fits; a run in flight is abandoned before it writes anything (``update``
 writes all results in one transaction at the end) and its worker processes are
 terminated, so quitting never waits for a long refit.
@@ -195,16 +196,9 @@ class LiveLoop:
     def run_pass(self) -> PassReport:
         report = PassReport(checked_at=self.clock())
         try:
-            if self.last_board is None:
-                self._load()
-            self._apply_drops(report)
-            board = self._load()
-            if data_version(board) != self._updated_data_version:
-                self._need_update = True
-            refit = self._take_refit()
-            if (self._need_update or refit is not None) and not self.stop.is_set():
-                self._estimate(report, refit, data_version(board))
-                self._load()
+            # one open of the store for the whole pass (a refit lets go of it: Store.hold)
+            with self.store.hold():
+                self._pass(report)
         except EstimationCancelled:
             report.estimation = "stopped before writing: the app is closing"
         except StoreBusy as exc:
@@ -212,6 +206,18 @@ class LiveLoop:
         except Exception as exc:  # the next pass retries; the screen says what went wrong
             report.error = f"{type(exc).__name__}: {exc}"
         return report
+
+    def _pass(self, report: PassReport) -> None:
+        if self.last_board is None:
+            self._load()
+        self._apply_drops(report)
+        board = self._load()
+        if data_version(board) != self._updated_data_version:
+            self._need_update = True
+        refit = self._take_refit()
+        if (self._need_update or refit is not None) and not self.stop.is_set():
+            self._estimate(report, refit, data_version(board))
+            self._load()
 
     def _load(self) -> Board:
         board = load_board(self.store, self.config)
