@@ -3,11 +3,34 @@
 -- name: assets
 SELECT asset_id, label, frequency FROM assets ORDER BY asset_id;
 
--- name: asset_returns
-SELECT asset_id, date, ret FROM asset_returns ORDER BY asset_id, date;
+-- name: asset_returns_since
+SELECT asset_id, date, ret FROM asset_returns WHERE date >= ?;
 
--- name: risk_free
-SELECT date, rate FROM risk_free WHERE frequency = ? ORDER BY date;
+-- name: risk_free_since
+SELECT date, rate FROM risk_free WHERE frequency = ? AND date >= ? ORDER BY date;
+
+-- name: factor_returns_of_since
+SELECT factor_id, date, ret FROM factor_returns WHERE factor_id IN (SELECT unnest(CAST(? AS VARCHAR[]))) AND date >= ?;
+
+-- name: factor_row_counts
+SELECT f.factor_id, count(r.ret) AS n FROM factors f LEFT JOIN factor_returns r USING (factor_id)
+WHERE f.frequency = ? AND f.is_traded GROUP BY f.factor_id ORDER BY f.factor_id;
+
+-- name: market_fit_columns
+SELECT params_json->>'$.columns' FROM model_fits
+WHERE is_current AND subject_id = ? AND model = ? AND status = 'ok';
+
+-- name: asset_date_before
+-- the date ? rows of asset returns before a date (none when the history is shorter)
+SELECT date FROM (SELECT DISTINCT date FROM asset_returns WHERE date < ?) ORDER BY date DESC LIMIT 1 OFFSET ?;
+
+-- name: latest_exposure_factors
+SELECT DISTINCT factor_id FROM exposure_estimates
+WHERE superseded_at IS NULL AND date = (SELECT max(date) FROM exposure_estimates WHERE superseded_at IS NULL)
+ORDER BY factor_id;
+
+-- name: last_asset_date
+SELECT max(date) FROM asset_returns;
 
 -- name: last_exposure_date
 SELECT max(date) FROM exposure_estimates WHERE superseded_at IS NULL;

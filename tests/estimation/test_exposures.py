@@ -311,3 +311,28 @@ def test_random_walk_too_little_data():
     assert est.status == "too_little_data"
     assert est.asset_status == ("too_little_data", "too_little_data")
     assert np.isnan(est.betas).all()
+
+
+def test_a_few_new_rows_from_their_windows_directly_match_statsmodels_and_the_sliding_sums():
+    # Up to p output rows are computed from each window's own residuals, not from the
+    # sliding sums (a day's update would pay the sums' whole warm-up). Reference:
+    # statsmodels OLS(cov_type='HAC') on each window; twin: the sliding-sum kernel on the
+    # same rows (it loses a few digits in its expansion, hence 1e-9 there).
+    f, y = _panel(21, 400, 7, 3)
+    y[390, 2] = np.nan                                    # one asset with a gap in the window
+    window, lags = 150, 5
+    model = RollingExposureModel(window, hac_lags=lags, min_nobs=140)
+    p = f.shape[1] + 1
+    direct = model.fit(y, f, output_from=400 - p)         # p rows: the direct path
+    sliding = model.fit(y, f, output_from=400 - p - 1)    # p + 1 rows: the sliding sums
+    for o, t in enumerate(range(400 - p, 400)):
+        for i in range(y.shape[1]):
+            res, n = _statsmodels_window(y[:, i], f, t - window + 1, t, lags)
+            assert direct.nobs[o, i] == n
+            np.testing.assert_allclose(direct.betas[o, i], res.params[1:], rtol=0, atol=1e-10)
+            np.testing.assert_allclose(direct.se[o, i], res.bse[1:], rtol=1e-8)
+    np.testing.assert_allclose(direct.betas, sliding.betas[1:], rtol=0, atol=1e-12)
+    np.testing.assert_allclose(direct.se, sliding.se[1:], rtol=1e-9)
+    np.testing.assert_allclose(direct.r2, sliding.r2[1:], rtol=0, atol=1e-10)
+    np.testing.assert_allclose(direct.beta_cov_last, sliding.beta_cov_last, rtol=1e-8, atol=1e-14)
+    np.testing.assert_array_equal(direct.cell_status, sliding.cell_status[1:])

@@ -64,3 +64,87 @@ def test_report_carries_the_asset_view(estimated_demo_template):
     assert got == {r.asset_id: r.expected_ann for r in view.rows}
     text = render_report(store, config, "text")
     assert "GRS test of joint alphas" in text and "Hansen-Jagannathan" in text
+
+
+def _latest_stored(store):
+    with store.connect() as con:
+        return con.execute("""
+            SELECT asset_id, factor_id, date, beta, beta_se, vintage FROM exposure_estimates
+            WHERE superseded_at IS NULL AND date = (SELECT max(date) FROM exposure_estimates
+                                                    WHERE superseded_at IS NULL)
+            ORDER BY asset_id, factor_id""").df()
+
+
+def test_a_days_exposures_read_one_window_and_equal_the_whole_history_fit(estimated_demo_store, monkeypatch):
+    # The daily update reads about one window of rows, not the whole history; the new
+    # date's rolling estimates only see the last window, so they must equal a fit of the
+    # whole panel at that date (same rows, same arithmetic: to rounding, 1e-12).
+    import numpy as np
+
+    from tracker.estimation.exposures import RollingExposureModel
+    from tracker.ingest.inbox import process_inbox
+    from tracker.seed_db import scenario as sc
+    from tracker.service import assets
+    from tracker.service import estimate as est
+
+    from drop_helpers import drop
+
+    store, config = estimated_demo_store
+    scn = sc.generate()
+    day = sc.held_back_days(scn)[0]
+    drop(config.inbox_path(store.folder), "day.sql", sc.drop_file_text(scn, day))
+    assert [o.outcome for o in process_inbox(store, config)] == ["applied"]
+    reads = []
+    original = assets._panel
+
+    def spying(con, *args, **kwargs):
+        panel = original(con, *args, **kwargs)
+        reads.append((kwargs.get("since"), None if panel is None else len(panel.dates)))
+        return panel
+
+    monkeypatch.setattr(assets, "_panel", spying)
+    est.update(store, config)
+    window = config.assets.window_daily
+    assert len(reads) == 1 and reads[0][0] is not None
+    # a window and READ_MARGIN asset dates before the new day, through it: not the history
+    assert window <= reads[0][1] <= window + assets.READ_MARGIN + 2
+    stored = _latest_stored(store)
+    assert pd.Timestamp(stored["date"].iloc[0]) == day
+    with store.connect() as con:
+        whole = original(con, config)
+    fit = RollingExposureModel(window).fit(whole.excess, whole.factors, output_from=len(whole.dates) - 1)
+    assert pd.Timestamp(fit.dates[-1]) == day
+    for i, a in enumerate(fit.assets):
+        for j, f in enumerate(fit.factors):
+            row = stored[(stored["asset_id"] == a) & (stored["factor_id"] == f)]
+            np.testing.assert_allclose(row[["beta", "beta_se"]].to_numpy()[0],
+                                       [fit.betas[-1, i, j], fit.se[-1, i, j]], rtol=1e-12, atol=0)
+
+
+def test_exposures_take_the_market_regimes_factors_and_follow_a_change_of_them(estimated_demo_store):
+    # more traded long-history factors than the market regime takes: the assets are
+    # regressed on its choice (at most market_factors_max), and a change of that set
+    # supersedes the stored exposures and derives them again under a new vintage
+    import dataclasses
+
+    from tracker.service.assets import ALPHA, exposure_factors, update_exposures
+
+    store, config = estimated_demo_store
+    before = _latest_stored(store)
+    with store.connect() as con:
+        all_long = exposure_factors(con)                       # no config: every eligible factor
+        assert sorted(before["factor_id"].unique()) == sorted([ALPHA, *exposure_factors(con, config)])
+        small = dataclasses.replace(config, models=dataclasses.replace(config.models, market_factors_max=3))
+        chosen = exposure_factors(con, small)
+    assert len(all_long) > 3 and len(chosen) == 3 and set(chosen) <= set(all_long)
+    assert update_exposures(store, small) > 0
+    after = _latest_stored(store)
+    assert sorted(after["factor_id"].unique()) == sorted([ALPHA, *chosen])
+    assert after["vintage"].iloc[0] == before["vintage"].iloc[0] + 1
+    with store.connect() as con:
+        left = con.execute("SELECT count(*) FROM exposure_estimates WHERE superseded_at IS NULL "
+                           "AND vintage = ?", [int(before["vintage"].iloc[0])]).fetchone()[0]
+    assert left == 0                                           # the old set is superseded everywhere
+    assert update_exposures(store, small) == 0                 # and then nothing is due
+    view = load_assets_view(store, small)
+    assert view.status == "ok" and set(view.factors) == set(chosen)

@@ -334,10 +334,15 @@ class RollingExposureModel:
         cov_last = np.full((n_assets, k, k), np.nan)
 
         first = max(0, output_from - self.window + 1)
-        moments = _WindowMoments(x, yz, lag_prod, weights, first)
-        for t in range(first, n_rows):
+        # A few output rows (a day's update): each from its own window's residuals
+        # (_direct_cells, about 2 W N p^2 (L+1) operations a row) rather than sliding sums,
+        # whose warm-up over the window alone costs about 4 W N p^3 (L+1). Measured with
+        # 500 assets, 12 factors, a 756-row window: one new row 2.0 s -> 0.1 s.
+        moments = None if n_out <= p else _WindowMoments(x, yz, lag_prod, weights, first)
+        for t in range(first if moments is not None else output_from, n_rows):
             a = max(0, t - self.window + 1)
-            moments.slide(t, a)
+            if moments is not None:
+                moments.slide(t, a)
             if t < output_from:
                 continue
             o = t - output_from
@@ -347,6 +352,8 @@ class RollingExposureModel:
             if not enough.any():
                 continue
             complete = enough & (n_i == cum_rows[t + 1] - cum_rows[a])
+            if moments is None:
+                complete = np.zeros_like(enough)
             partial = enough & ~complete
             cells = []
             direct = partial
