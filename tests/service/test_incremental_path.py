@@ -23,7 +23,7 @@ from tracker.estimation import significance as sig
 from tracker.estimation import warning_rules as wr
 from tracker.service.estimate import update
 from tracker.service.factor_warnings import batch_misfit_diagnostics
-from tracker.service.history_summary import MAX_LAG, HistorySummary, LagSums, sizes_for, unpack
+from tracker.service.history_summary import MAX_LAG, HistorySummary, LagSums, sizes_for
 from tracker.store.bootstrap import open_store
 
 RTOL = 1e-9
@@ -152,9 +152,52 @@ def test_summary_head_and_the_mean_test_before_the_rows_are_appended():
     # refused where the whole summary is: other tail sizes, another frequency, a lost field
     assert head_from_state(state, {**sizes, "errors": 7}, "daily") is None
     assert head_from_state(state, sizes, "monthly") is None
-    lost = {"history": {k: v for k, v in state["history"].items() if k != "errors"}}
-    assert head_from_state(lost, sizes, "daily") is None
+    for key in ("gap", "floats", "lengths"):
+        lost = {"history": {k: v for k, v in state["history"].items() if k != key}}
+        assert head_from_state(lost, sizes, "daily") is None
+    short = {"history": {**state["history"], "lengths": state["history"]["lengths"][:-1]}}
+    assert head_from_state(short, sizes, "daily") is None
     assert head_from_state(None, sizes, "daily") is None
+
+
+def _version_1(s: HistorySummary) -> dict:
+    """A summary as the previous storage layout wrote it: one packed field per list."""
+    from tracker.service.history_summary import pack
+
+    def sums(x):
+        return {"n": x.n, "total": x.total, "cross": pack(x.cross), "head": pack(x.head), "tail": pack(x.tail)}
+
+    run = dict(s.run)
+    run["value"], run["cur_value"] = (pack([np.nan if run[k] is None else run[k]]) for k in ("value", "cur_value"))
+    return {"version": 1, "sizes": s.sizes, "frequency": s.frequency, "n_rows": s.n_rows,
+            "returns": sums(s.returns), "last_date": s.last_date, "loglik_base": sums(s.loglik_base),
+            "loglik_window": pack(s.loglik_window), "errors": pack(s.errors), "premium": pack(s.premium),
+            "premium_var": pack(s.premium_var),
+            "regimes": {"k": s.regimes.shape[1], "values": pack(s.regimes.ravel())},
+            "gap": s.gap, "run": run, "spacing": s.spacing}
+
+
+def test_a_summary_stored_in_the_previous_layout_reads_the_same():
+    # stores written before the one-field layout keep their summaries: read as they are,
+    # rewritten in the new layout at the next update; every number survives both trips
+    from tracker.service.history_summary import VERSION, head_from_state, summary_from_state
+
+    rng = np.random.default_rng(5)
+    th = wr.WarningThresholds()
+    sizes = sizes_for(th, 21)
+    s = HistorySummary.empty(sizes, "daily")
+    s.extend(*_history(rng, 900))
+    for stored in (_version_1(s), s.to_dict()):
+        state = {"history": json.loads(json.dumps(stored))}
+        back = summary_from_state(state, sizes, "daily")
+        assert back is not None
+        assert back.to_dict() == s.to_dict() and back.to_dict()["version"] == VERSION
+        for name in ("errors", "premium", "premium_var", "loglik_window", "regimes"):
+            np.testing.assert_array_equal(getattr(back, name), getattr(s, name))
+        assert (back.run, back.gap, back.spacing) == (s.run, s.gap, s.spacing)
+        head = head_from_state(state, sizes, "daily")
+        np.testing.assert_array_equal(head.returns.cross, s.returns.cross)
+        assert head.returns.mean_test() == s.mean_test()
 
 
 # ------------------------------------------------------------------ the store-level twin
@@ -218,10 +261,10 @@ def test_fast_advance_stores_what_the_whole_history_path_stores(estimated_demo_t
     sa = _q(fast, "SELECT subject_id, state_json FROM filter_states WHERE model = 'premium' ORDER BY 1")
     sb = _q(full, "SELECT subject_id, state_json FROM filter_states WHERE model = 'premium' ORDER BY 1")
     for ta, tb in zip(sa["state_json"], sb["state_json"]):
-        ha, hb = json.loads(ta)["history"], json.loads(tb)["history"]
-        assert ha["n_rows"] == hb["n_rows"] and ha["gap"] == hb["gap"] and ha["run"] == hb["run"]
-        np.testing.assert_allclose(unpack(ha["returns"]["cross"]), unpack(hb["returns"]["cross"]), rtol=RTOL)
-        np.testing.assert_allclose(unpack(ha["errors"]), unpack(hb["errors"]), rtol=RTOL)
+        ha, hb = (HistorySummary.from_dict(json.loads(t)["history"]) for t in (ta, tb))
+        assert ha.n_rows == hb.n_rows and ha.gap == hb.gap and ha.run == hb.run
+        np.testing.assert_allclose(ha.returns.cross, hb.returns.cross, rtol=RTOL)
+        np.testing.assert_allclose(ha.errors, hb.errors, rtol=RTOL)
 
 
 # ------------------------------------------------------------------ the refit's extras

@@ -149,8 +149,10 @@ def update_exposures(store: Store, config: Config) -> int:
     """
     window = _window(config, "daily")
     with store.connect() as con:
+        if con.execute(sql("assets.assets")).df().query("frequency == 'daily'").empty:
+            return 0
         factors = exposure_factors(con, config)
-        if not factors or con.execute(sql("assets.assets")).df().query("frequency == 'daily'").empty:
+        if not factors:
             return 0
         last = con.execute(sql("assets.last_exposure_date")).fetchone()[0]
         vintage = int(con.execute(sql("assets.exposure_vintage")).fetchone()[0])

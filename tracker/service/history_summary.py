@@ -36,7 +36,8 @@ from tracker.estimation import significance as sig
 from tracker.estimation import warning_rules as wr
 
 MAX_LAG = 48          # newey_west_lags reaches 48 only beyond ~13 million rows
-VERSION = 1
+# 2: every float of a summary in one packed field (1: a field each, still read)
+VERSION = 2
 
 
 def pack(values) -> str:
@@ -46,7 +47,12 @@ def pack(values) -> str:
 
 
 def unpack(text: str) -> list[float]:
-    return np.frombuffer(base64.b64decode(text), dtype="<f8").tolist()
+    return _floats(text).tolist()
+
+
+def _floats(text: str) -> np.ndarray:
+    """:func:`pack`'s values as a writable float64 array."""
+    return np.frombuffer(base64.b64decode(text), dtype="<f8").astype(float)
 
 
 @dataclass
@@ -55,34 +61,34 @@ class LagSums:
 
     n: int = 0
     total: float = 0.0
-    cross: list = field(default_factory=lambda: [0.0] * (MAX_LAG + 1))   # C_j = sum_t x_t x_{t-j}
-    head: list = field(default_factory=list)                            # first min(n, MAX_LAG)
-    tail: list = field(default_factory=list)                            # last min(n, MAX_LAG)
+    cross: np.ndarray = field(default_factory=lambda: np.zeros(MAX_LAG + 1))   # C_j = sum_t x_t x_{t-j}
+    head: np.ndarray = field(default_factory=lambda: np.empty(0))              # first min(n, MAX_LAG)
+    tail: np.ndarray = field(default_factory=lambda: np.empty(0))              # last min(n, MAX_LAG)
 
     @classmethod
     def of(cls, x: np.ndarray) -> LagSums:
         x = np.asarray(x, dtype=float)
         n = x.size
         cross = [float(x @ x)] + [float(x[j:] @ x[:-j]) if j < n else 0.0 for j in range(1, MAX_LAG + 1)]
-        return cls(n, float(x.sum()), cross, x[:MAX_LAG].tolist(), x[-MAX_LAG:].tolist() if n else [])
+        return cls(n, float(x.sum()), np.array(cross), x[:MAX_LAG].copy(), x[-MAX_LAG:].copy() if n else np.empty(0))
 
     def extend(self, values) -> None:
-        cross, tail, head = self.cross, self.tail, self.head
-        for v in values:
-            v = float(v)
+        """Append values one at a time: C_j += x_t x_{t-j} for every lag the tail holds
+        (one vector operation a value; each element the same product and sum as a loop)."""
+        cross = self.cross
+        for v in np.asarray(values, dtype=float).tolist():
             cross[0] += v * v
-            for j in range(1, len(tail) + 1):
-                cross[j] += v * tail[-j]
+            k = self.tail.size
+            if k:
+                cross[1:k + 1] += v * self.tail[::-1]
             self.total += v
             self.n += 1
-            if len(head) < MAX_LAG:
-                head.append(v)
-            tail.append(v)
-            if len(tail) > MAX_LAG:
-                del tail[0]
+            if self.head.size < MAX_LAG:
+                self.head = np.append(self.head, v)
+            self.tail = np.append(self.tail, v)[-MAX_LAG:]
 
     def copy(self) -> LagSums:
-        return LagSums(self.n, self.total, list(self.cross), list(self.head), list(self.tail))
+        return LagSums(self.n, self.total, self.cross.copy(), self.head.copy(), self.tail.copy())
 
     def values_if_short(self) -> np.ndarray | None:
         """The whole series when it fits in ``head`` (then the library is used directly)."""
@@ -93,10 +99,11 @@ class LagSums:
         n, tot = self.n, self.total
         m = tot / n
         s = 0.0
+        head, tail, cross = self.head.tolist(), self.tail.tolist(), self.cross.tolist()
         for j in range(lags + 1):
-            a = tot - math.fsum(self.head[:j])                  # sum_{t >= j} x_t
-            b = tot - (math.fsum(self.tail[-j:]) if j else 0.0)  # sum_{t <= n-1-j} x_t
-            g = self.cross[j] - m * (a + b) + (n - j) * m * m
+            a = tot - math.fsum(head[:j])                       # sum_{t >= j} x_t
+            b = tot - (math.fsum(tail[-j:]) if j else 0.0)      # sum_{t <= n-1-j} x_t
+            g = cross[j] - m * (a + b) + (n - j) * m * m
             s += g if j == 0 else 2.0 * (1.0 - j / (lags + 1.0)) * g
         return s
 
@@ -132,7 +139,7 @@ class LagSums:
 
     @classmethod
     def from_dict(cls, d: dict) -> LagSums:
-        return cls(int(d["n"]), float(d["total"]), unpack(d["cross"]), unpack(d["head"]), unpack(d["tail"]))
+        return cls(int(d["n"]), float(d["total"]), _floats(d["cross"]), _floats(d["head"]), _floats(d["tail"]))
 
 
 def mean_test_with(sums: LagSums, returns: np.ndarray) -> sig.MeanTest | None:
@@ -170,11 +177,11 @@ class HistorySummary:
     returns: LagSums = field(default_factory=LagSums)      # finite returns
     last_date: str | None = None       # of the last finite return
     loglik_base: LagSums = field(default_factory=LagSums)
-    loglik_window: list = field(default_factory=list)
-    errors: list = field(default_factory=list)
-    premium: list = field(default_factory=list)
-    premium_var: list = field(default_factory=list)
-    regimes: list = field(default_factory=list)
+    loglik_window: np.ndarray = field(default_factory=lambda: np.empty(0))
+    errors: np.ndarray = field(default_factory=lambda: np.empty(0))
+    premium: np.ndarray = field(default_factory=lambda: np.empty(0))
+    premium_var: np.ndarray = field(default_factory=lambda: np.empty(0))
+    regimes: np.ndarray = field(default_factory=lambda: np.empty((0, 0)))     # (rows, K)
     gap: dict = field(default_factory=lambda: {"longest": 0, "start": None, "total": 0})
     run: dict = field(default_factory=lambda: {"best": 0, "end": -1, "value": None, "cur": 0, "cur_value": None})
     spacing: dict = field(default_factory=dict)           # days between finite dates -> count
@@ -200,15 +207,17 @@ class HistorySummary:
         self._extend_dates(np.asarray(dates).astype("datetime64[D]")[finite])
         self._extend_runs(vals)
         e = np.asarray(std_error, dtype=float)
-        self.errors = (self.errors + e[np.isfinite(e)][-sz["errors"]:].tolist())[-sz["errors"]:]
+        self.errors = _last(self.errors, e[np.isfinite(e)], sz["errors"])
         self._extend_loglik(np.asarray(loglik, dtype=float))
         p = sz["premium"]
-        self.premium = (self.premium + np.asarray(premium, float)[-p:].tolist())[-p:]
-        self.premium_var = (self.premium_var + np.asarray(premium_var, float)[-p:].tolist())[-p:]
+        self.premium = _last(self.premium, np.asarray(premium, float), p)
+        self.premium_var = _last(self.premium_var, np.asarray(premium_var, float), p)
         if regime_filtered is not None:
             r = np.asarray(regime_filtered, dtype=float)
             ok = np.all(np.isfinite(r), axis=1)
-            self.regimes = (self.regimes + r[ok][-sz["regimes"]:].tolist())[-sz["regimes"]:]
+            # rows of another number of regimes (a refit changed it) are not read again
+            old = self.regimes if self.regimes.shape[1:] == r.shape[1:] else r[:0]
+            self.regimes = _last(old, r[ok], sz["regimes"])
 
     def _extend_dates(self, d: np.ndarray) -> None:
         if d.size == 0:
@@ -261,7 +270,7 @@ class HistorySummary:
             self.loglik_base = LagSums.of(leaving)      # a whole history: vectorised
         else:
             self.loglik_base.extend(leaving)
-        self.loglik_window = window.tolist()
+        self.loglik_window = window
 
     # ------------------------------------------------------------------ reading
 
@@ -335,30 +344,62 @@ class HistorySummary:
     # ------------------------------------------------------------------ storage
 
     def to_dict(self) -> dict:
-        k = len(self.regimes[0]) if self.regimes else 0
-        run = dict(self.run)
-        run["value"], run["cur_value"] = pack([_nan(run["value"])]), pack([_nan(run["cur_value"])])
+        parts = self._float_parts()
         return {
             "version": VERSION, "sizes": self.sizes, "frequency": self.frequency, "n_rows": self.n_rows,
-            "returns": self.returns.to_dict(), "last_date": self.last_date,
-            "loglik_base": self.loglik_base.to_dict(), "loglik_window": pack(self.loglik_window),
-            "errors": pack(self.errors), "premium": pack(self.premium), "premium_var": pack(self.premium_var),
-            "regimes": {"k": k, "values": pack([v for r in self.regimes for v in r])},
-            "gap": self.gap, "run": run, "spacing": self.spacing,
+            "last_date": self.last_date, "gap": self.gap,
+            "run": {k: v for k, v in self.run.items() if k not in ("value", "cur_value")},
+            "spacing": self.spacing,
+            "returns": {"n": self.returns.n, "total": self.returns.total},
+            "loglik_base": {"n": self.loglik_base.n, "total": self.loglik_base.total},
+            "k": int(self.regimes.shape[1]) if self.regimes.size else 0,
+            "lengths": [int(a.size) for a in parts], "floats": pack(np.concatenate(parts)),
         }
+
+    def _float_parts(self) -> list[np.ndarray]:
+        """Every float of the summary, in the order of the packed field."""
+        r, b = self.returns, self.loglik_base
+        run = np.array([_nan(self.run["value"]), _nan(self.run["cur_value"])])
+        return [r.cross, r.head, r.tail, b.cross, b.head, b.tail, self.loglik_window, self.errors,
+                self.premium, self.premium_var, self.regimes.ravel(), run]
 
     @classmethod
     def from_dict(cls, d: dict) -> HistorySummary:
+        if int(d["version"]) == 1:
+            return cls._from_version_1(d)
+        lengths = [int(n) for n in d["lengths"]]
+        if len(lengths) != 12:
+            raise ValueError("a history summary's packed floats do not have their 12 parts")
+        flat = _floats(d["floats"])
+        if flat.size != sum(lengths):
+            raise ValueError("a history summary's packed floats do not match their lengths")
+        parts = np.split(flat, np.cumsum(lengths)[:-1])
+        k = int(d["k"])
+        run = dict(d["run"])
+        run["value"], run["cur_value"] = _none(float(parts[11][0])), _none(float(parts[11][1]))
+        return cls(
+            sizes=dict(d["sizes"]), frequency=d["frequency"], n_rows=int(d["n_rows"]),
+            returns=LagSums(int(d["returns"]["n"]), float(d["returns"]["total"]), *parts[0:3]),
+            last_date=d["last_date"],
+            loglik_base=LagSums(int(d["loglik_base"]["n"]), float(d["loglik_base"]["total"]), *parts[3:6]),
+            loglik_window=parts[6], errors=parts[7], premium=parts[8], premium_var=parts[9],
+            regimes=parts[10].reshape(-1, k) if k else np.empty((0, 0)),
+            gap=dict(d["gap"]), run=run, spacing={str(k_): int(v) for k_, v in d["spacing"].items()},
+        )
+
+    @classmethod
+    def _from_version_1(cls, d: dict) -> HistorySummary:
+        """A summary stored before VERSION 2: one packed field per list."""
         k = int(d["regimes"]["k"])
-        flat = unpack(d["regimes"]["values"])
+        flat = _floats(d["regimes"]["values"])
         run = dict(d["run"])
         run["value"], run["cur_value"] = (_none(unpack(run[key])[0]) for key in ("value", "cur_value"))
         return cls(
             sizes=dict(d["sizes"]), frequency=d["frequency"], n_rows=int(d["n_rows"]),
             returns=LagSums.from_dict(d["returns"]), last_date=d["last_date"],
-            loglik_base=LagSums.from_dict(d["loglik_base"]), loglik_window=unpack(d["loglik_window"]),
-            errors=unpack(d["errors"]), premium=unpack(d["premium"]), premium_var=unpack(d["premium_var"]),
-            regimes=[flat[i:i + k] for i in range(0, len(flat), k)] if k else [],
+            loglik_base=LagSums.from_dict(d["loglik_base"]), loglik_window=_floats(d["loglik_window"]),
+            errors=_floats(d["errors"]), premium=_floats(d["premium"]), premium_var=_floats(d["premium_var"]),
+            regimes=flat.reshape(-1, k) if k else np.empty((0, 0)),
             gap=dict(d["gap"]), run=run, spacing={str(k_): int(v) for k_, v in d["spacing"].items()},
         )
 
@@ -378,7 +419,7 @@ def _usable(state: dict | None, sizes: dict | None, frequency: str) -> dict | No
     if not state or sizes is None:
         return None
     d = state.get("history")
-    if not d or d.get("version") != VERSION or d.get("sizes") != sizes or d.get("frequency") != frequency:
+    if not d or d.get("version") not in (1, VERSION) or d.get("sizes") != sizes or d.get("frequency") != frequency:
         return None
     return d
 
@@ -412,12 +453,27 @@ def head_from_state(state: dict | None, sizes: dict | None, frequency: str) -> S
     if d is None:
         return None
     try:
-        for key in ("loglik_base", "loglik_window", "errors", "premium", "premium_var", "regimes", "gap",
-                    "run", "spacing", "last_date"):
-            d[key]                              # present (their contents are read where used)
-        return SummaryHead(int(d["n_rows"]), LagSums.from_dict(d["returns"]))
+        if d["version"] == 1:
+            for key in ("loglik_base", "loglik_window", "errors", "premium", "premium_var", "regimes", "gap",
+                        "run", "spacing", "last_date"):
+                d[key]                          # present (their contents are read where used)
+            return SummaryHead(int(d["n_rows"]), LagSums.from_dict(d["returns"]))
+        for key in ("loglik_base", "k", "gap", "run", "spacing", "last_date"):
+            d[key]
+        lengths = [int(n) for n in d["lengths"]]
+        flat = _floats(d["floats"])
+        if len(lengths) != 12 or flat.size != sum(lengths):
+            return None
+        cross, head, tail = np.split(flat[:sum(lengths[:3])], np.cumsum(lengths[:2]))
+        return SummaryHead(int(d["n_rows"]), LagSums(int(d["returns"]["n"]), float(d["returns"]["total"]),
+                                                     cross, head, tail))
     except (KeyError, TypeError, ValueError):
         return None
+
+
+def _last(old: np.ndarray, new: np.ndarray, size: int) -> np.ndarray:
+    """The last ``size`` of ``old`` followed by ``new``."""
+    return np.concatenate([old, new[-size:]])[-size:] if size > 0 else old[:0]
 
 
 def _nan(x) -> float:
