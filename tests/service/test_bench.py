@@ -21,7 +21,7 @@ CELL_FIELDS = {"factors", "days", "state", "load_s", "rows_loaded", "full_refit"
                "build_peak_rss_mb", "build_peak_children_rss_mb", "seconds", "store_rows", "store_mb"}
 UPDATE_FIELDS = {"wall_s", "tasks", "kinds", "market", "phases_s", "model_cpu_s", "rows_written", "skipped"}
 INCREMENTAL_FIELDS = {"new_days", "new_rows", "ingest_s", "ingest_outcomes", "plans", "advance_s",
-                      "advance_update", "due_s", "due_update", "advance_end_to_end_s", "end_to_end_s"}
+                      "advance_update", "due_s", "due_update", "advance_end_to_end_s", "end_to_end_s", "close_s"}
 NAIVE_FIELDS = {"factors", "uc_s", "markov_s", "wall_s", "per_factor_s", "failed_fits", "loglik_regimes",
                 "loglik_premium_same_model", "loglik_premium_models"}
 INGEST_FIELDS = {"rows", "factors", "days", "file_mb", "seconds", "rows_per_s", "rows_written", "outcome"}
@@ -86,6 +86,28 @@ def test_tiny_bench_numbers_are_finite(tiny):
     if cell["ui"].get("mode") == "textual" and "error" not in cell["ui"]:
         assert all(_finite(cell["ui"][k]) for k in ("startup_s", "cursor_down_s", "sort_s"))
         assert cell["ui"]["cursor_moved"]
+
+
+def test_bench_with_assets_derives_their_exposures_and_drops_their_rows(tmp_path):
+    # --assets K: the cell's assets get their exposures before the daily drops, and each
+    # drop carries their rows and the risk-free rate, so the day's update extends them
+    parser = argparse.ArgumentParser()
+    add_bench_arguments(parser)
+    path = tmp_path / "bench.json"
+    argv = ["--cells", "3x800", "--new-days", "1", "--ingest-rows", "0", "--no-ui", "--assets", "4",
+            "--json", str(path), "--workdir", str(tmp_path / "work"), "--in-process"]
+    lines: list[str] = []
+    assert bench_command(parser.parse_args(argv), lines.append) == 0, "\n".join(lines)
+    (cell,) = json.loads(path.read_text())["cells"]
+    first = cell["first_exposures"]
+    assert first["assets"] == 4 and first["in_refit"]          # a refit cell: its update derived them
+    (inc,) = cell["incremental"]
+    assert inc["ingest_outcomes"] == {"applied": 1}
+    assert inc["advance_update"]["phases_s"]["exposures"] >= 0
+    # 800 days, a 756-day window: the last 45 dates before the drop, then the new one,
+    # each with 4 assets x (3 factors + the intercept)
+    assert cell["store_rows"]["exposure_estimates"] == (800 - 756 + 1 + 1) * 4 * 4
+    assert any("with 4 assets" in line for line in lines)
 
 
 def test_reduced_grid_options_are_parsed():

@@ -62,6 +62,7 @@ from pathlib import Path
 
 import numpy as np
 
+from tracker.service.bench_data import ASSET_DAYS
 from tracker.service.bench_report import print_report, targets
 
 DEFAULT_FACTORS = (10, 100, 500)
@@ -88,6 +89,10 @@ def add_bench_arguments(parser) -> None:
                         help="sizes of the incremental drop files in days (default 1,5)")
     parser.add_argument("--ingest-rows", type=int, default=1_000_000, metavar="ROWS",
                         help="rows of the ingest-throughput drop file (default 1,000,000; 0 skips)")
+    parser.add_argument("--assets", type=int, default=0, metavar="K",
+                        help="synthetic assets per cell, with the last %d days of returns; their "
+                             "exposures are derived before the daily drops, which then carry asset "
+                             "rows too (default 0: none)" % ASSET_DAYS)
     parser.add_argument("--ui", dest="ui", action="store_true", default=True,
                         help="time the interface on the largest cell (default)")
     parser.add_argument("--no-ui", dest="ui", action="store_false")
@@ -126,10 +131,13 @@ def _options(args) -> dict:
         "ui": bool(get("ui", True)), "workers": get("workers"), "json": get("json"),
         "workdir": get("workdir"), "keep": bool(get("keep", False)), "seed": int(get("seed", 20261202)),
         "in_process": bool(get("in_process", False)), "cells": _cells(get("cells")),
+        "assets": int(get("assets", 0) or 0),
     }
     grid = opts["cells"] or [(n, t) for n in opts["factors"] for t in opts["days"]]
     if not grid or min(n for n, _ in grid) < 1 or min(t for _, t in grid) < 300:
         raise ValueError("need at least one cell with >= 1 factor and >= 300 days")
+    if opts["assets"] < 0:
+        raise ValueError("--assets must not be negative")
     if not opts["new_days"] or min(opts["new_days"]) < 1:
         raise ValueError("--new-days must list positive day counts")
     return opts

@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 
 from tracker.service import estimate as est
-from tracker.service.bench_data import drop_text, load_panel, make_panel, write_drop
+from tracker.service.bench_data import drop_text, load_assets, load_panel, make_assets, make_panel, write_drop
 from tracker.service.executor import LocalProcessExecutor, executor_for
 from tracker.store.bootstrap import open_store
 
@@ -136,14 +136,15 @@ def naive_loop(store, panel, k: int) -> dict:
 # ---------------------------------------------------------------------- incremental
 
 
-def incremental(store, config, panel, k: int, offset: int, executor) -> dict:
-    """Drop ``k`` new days for every factor, ingest them, bring the estimates up to date."""
+def incremental(store, config, panel, k: int, offset: int, executor, assets=None) -> dict:
+    """Drop ``k`` new days for every factor (and asset), ingest them, bring the estimates
+    up to date."""
     from tracker.ingest.inbox import process_inbox
 
     t = panel.n_days
     rows = slice(t + offset, t + offset + k)
     inbox = config.inbox_path(store.folder)
-    write_drop(inbox, f"bench-{offset:04d}-{k}d.sql", drop_text(panel, rows))
+    write_drop(inbox, f"bench-{offset:04d}-{k}d.sql", drop_text(panel, rows, assets=assets))
     # as the interface's pass does it: the drop and the update share one open of the store
     # (Store.hold), whose close -- DuckDB's checkpoint -- is timed with the update
     t0 = time.perf_counter()
@@ -194,6 +195,8 @@ def build_cell(spec: dict) -> dict:
                  "borrowed_state": None}
     t0 = time.perf_counter()
     out["rows_loaded"] = load_panel(store, panel)
+    if spec.get("assets"):
+        out["asset_rows_loaded"] = load_assets(store, panel, make_assets(panel, spec["assets"], seed=spec["seed"]))
     out["load_s"] = time.perf_counter() - t0
     if n <= spec["refit_max"]:
         out["state"] = "refit"
@@ -208,6 +211,16 @@ def build_cell(spec: dict) -> dict:
         t0 = time.perf_counter()
         out["borrowed_state"] = build_borrowed_state(store, config, panel, executor=executor)
         out["borrowed_state"]["wall_s"] = time.perf_counter() - t0
+    if spec.get("assets"):
+        # the assets' first exposures (every date of their history), before the daily drops
+        from tracker.service.assets import update_exposures
+
+        t0 = time.perf_counter()
+        rows = update_exposures(store, config)
+        first = {"assets": spec["assets"], "rows": rows, "wall_s": time.perf_counter() - t0, "in_refit": False}
+        if out["full_refit"] and not rows:          # the refit's update derived them already
+            first.update(wall_s=out["full_refit"]["phases_s"].get("exposures", math.nan), in_refit=True)
+        out["first_exposures"] = first
     return out
 
 
@@ -223,8 +236,9 @@ def use_cell(spec: dict) -> dict:
     panel = make_panel(n, t, extra_days=sum(spec["new_days"]), seed=spec["seed"])   # same seed: same rows
     out: dict = {"incremental": [], "sample_refit": None, "ui": None}
     offset = 0
+    assets = make_assets(panel, spec["assets"], seed=spec["seed"]) if spec.get("assets") else None
     for k in spec["new_days"]:
-        out["incremental"].append(incremental(store, config, panel, k, offset, executor))
+        out["incremental"].append(incremental(store, config, panel, k, offset, executor, assets))
         offset += k
     if spec.get("state") == "borrowed" and spec["sample_refit"] > 0:
         ids = set(panel.factor_ids[: min(spec["sample_refit"], n)])
@@ -237,7 +251,8 @@ def use_cell(spec: dict) -> dict:
         out["ui"] = time_ui(store, config, n)
     with store.connect() as con:
         out["store_rows"] = {tbl: int(con.execute(f"SELECT count(*) FROM {tbl}").fetchone()[0])
-                             for tbl in ("factor_returns", "premium_estimates", "regime_estimates", "warnings")}
+                             for tbl in ("factor_returns", "premium_estimates", "regime_estimates", "warnings",
+                                         "exposure_estimates")}
     out["store_mb"] = sum(p.stat().st_size for p in folder.glob("store.duckdb*")) / 2**20
     return out
 

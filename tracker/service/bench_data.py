@@ -33,6 +33,8 @@ PPY = 252                                  # trading days a year: common practic
 CALM_STAY, STRESS_STAY = 0.99, 0.96
 VOL_SCALE = np.array([0.8, 1.8])           # calm, stressed volatility multipliers
 SHARPE_DRIFT = 0.05                        # annual Sharpe-ratio drift per sqrt(year)
+ASSET_DAYS = 1000                          # days of returns of each synthetic asset
+RISK_FREE_DAILY = 0.0001                   # invented flat daily risk-free rate
 
 
 @dataclass(frozen=True)
@@ -163,8 +165,57 @@ def load_panel(store: Store, panel: SyntheticPanel) -> int:
     return t * panel.n_factors
 
 
-def drop_text(panel: SyntheticPanel, rows: slice, columns: slice | None = None) -> str:
-    """A drop file (see :mod:`tracker.ingest.dropformat`) with the panel's rows ``rows``."""
+@dataclass(frozen=True)
+class SyntheticAssets:
+    """Invented assets priced by the panel's first factors: r_a = rf + b_a' f + e_a.
+
+    ``returns`` (T + H, K) total returns aligned with the panel's dates, NaN before each
+    asset's ASSET_DAYS of history; ``betas`` (K, F) the true exposures on the first F
+    factors."""
+
+    asset_ids: tuple
+    returns: np.ndarray
+    betas: np.ndarray
+
+
+def make_assets(panel: SyntheticPanel, k: int, *, seed: int = 20261202) -> SyntheticAssets:
+    rng = np.random.default_rng(seed + 1)
+    f = min(3, panel.n_factors)
+    betas = rng.normal(0.8, 0.4, (k, f))
+    noise = rng.standard_normal((panel.dates.size, k)) * rng.uniform(0.004, 0.012, k)
+    returns = RISK_FREE_DAILY + panel.returns[:, :f] @ betas.T + noise
+    returns[: max(panel.n_days - ASSET_DAYS, 0)] = np.nan
+    return SyntheticAssets(tuple(f"A{i:05d}" for i in range(k)), returns, betas)
+
+
+def load_assets(store: Store, panel: SyntheticPanel, assets: SyntheticAssets) -> int:
+    """Declare the assets and load their first rows (to the panel's T) and the risk-free
+    rate over the same dates; returns asset rows written."""
+    t = panel.n_days
+    wide = pd.DataFrame(assets.returns[:t], columns=list(assets.asset_ids))
+    wide.insert(0, "date", panel.dates[:t].astype("datetime64[ns]"))
+    start = max(t - ASSET_DAYS, 0)
+    rf = pd.DataFrame({"date": panel.dates[start:t].astype("datetime64[ns]"), "rate": RISK_FREE_DAILY})
+    meta = pd.DataFrame({"asset_id": list(assets.asset_ids), "label": "Synthetic asset", "frequency": "daily"})
+    with store.transaction() as con:
+        con.register("bench_assets", meta)
+        con.execute("INSERT INTO assets (asset_id, label, frequency) SELECT asset_id, label, frequency FROM bench_assets")
+        con.unregister("bench_assets")
+        con.register("bench_wide", wide.iloc[start:])
+        con.execute("INSERT INTO asset_returns (asset_id, date, ret) "
+                    "SELECT asset_id, CAST(date AS DATE), ret FROM "
+                    "(UNPIVOT bench_wide ON COLUMNS(* EXCLUDE (date)) INTO NAME asset_id VALUE ret)")
+        con.unregister("bench_wide")
+        con.register("bench_rf", rf)
+        con.execute("INSERT INTO risk_free (frequency, date, rate) SELECT 'daily', CAST(date AS DATE), rate FROM bench_rf")
+        con.unregister("bench_rf")
+    return (t - start) * len(assets.asset_ids)
+
+
+def drop_text(panel: SyntheticPanel, rows: slice, columns: slice | None = None,
+              assets: SyntheticAssets | None = None) -> str:
+    """A drop file (see :mod:`tracker.ingest.dropformat`) with the panel's rows ``rows``
+    (and the assets' rows and the risk-free rate on those dates, when given)."""
     ids = panel.factor_ids if columns is None else panel.factor_ids[columns]
     vals = panel.returns[rows] if columns is None else panel.returns[rows, columns]
     dates = panel.dates[rows]
@@ -174,7 +225,15 @@ def drop_text(panel: SyntheticPanel, rows: slice, columns: slice | None = None) 
     for d, row in zip(dates, vals):
         ds = str(d)
         body.extend(f"  ('{f}', DATE '{ds}', {v:.10g})" for f, v in zip(ids, row))
-    return "\n".join(lines) + "\n" + ",\n".join(body) + ";\n"
+    text = "\n".join(lines) + "\n" + ",\n".join(body) + ";\n"
+    if assets is not None and len(assets.asset_ids):
+        a_rows = [f"  ('{a}', DATE '{d}', {v:.10g})" for d, row in zip(dates, assets.returns[rows])
+                  for a, v in zip(assets.asset_ids, row) if np.isfinite(v)]
+        if a_rows:
+            text += "INSERT INTO asset_returns (asset_id, date, ret) VALUES\n" + ",\n".join(a_rows) + ";\n"
+        text += ("INSERT INTO risk_free (date, rate) VALUES\n"
+                 + ",\n".join(f"  (DATE '{d}', {RISK_FREE_DAILY:.12g})" for d in dates) + ";\n")
+    return text
 
 
 def write_drop(folder: Path, name: str, text: str) -> Path:

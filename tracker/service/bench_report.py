@@ -68,7 +68,12 @@ def print_report(result: dict, echo) -> None:
         one = _one_day(c)
         if one:
             echo(f"  {c['factors']}x{c['days']} 1-day plans {one['plans']}; ingest {one['ingest_s']:.3f} s; "
-                 f"advance phases {_phases(one.get('advance_update'))}")
+                 f"advance phases {_phases(one.get('advance_update'))}; close {one.get('close_s', 0.0):.3f}")
+        if c.get("first_exposures"):
+            fe = c["first_exposures"]
+            how = "in the refit" if fe.get("in_refit") else f"{fe['rows']:,} rows"
+            echo(f"  {c['factors']}x{c['days']} with {fe['assets']} assets: first exposures {fe['wall_s']:.1f} s "
+                 f"({how}); the daily drops carry their rows (exposures in the phases above)")
         if c.get("naive"):
             nv = c["naive"]
             echo(f"  {c['factors']}x{c['days']} naive ({nv['factors']} factors): UC {nv['uc_s']:.1f} s, "
