@@ -12,6 +12,9 @@ SELECT date, rate FROM risk_free WHERE frequency = ? AND date >= ? ORDER BY date
 -- name: factor_returns_of_since
 SELECT factor_id, date, ret FROM factor_returns WHERE factor_id IN (SELECT unnest(CAST(? AS VARCHAR[]))) AND date >= ?;
 
+-- name: traded_factors
+SELECT factor_id FROM factors WHERE frequency = ? AND is_traded ORDER BY factor_id;
+
 -- name: factor_row_counts
 SELECT f.factor_id, count(r.ret) AS n FROM factors f LEFT JOIN factor_returns r USING (factor_id)
 WHERE f.frequency = ? AND f.is_traded GROUP BY f.factor_id ORDER BY f.factor_id;

@@ -103,7 +103,11 @@ def test_a_days_exposures_read_one_window_and_equal_the_whole_history_fit(estima
         return panel
 
     monkeypatch.setattr(assets, "_panel", spying)
-    est.update(store, config)
+    summary = est.update(store, config)
+    with store.connect() as con:
+        # the run's own row counts choose the same factors as a count over the table
+        assert assets.exposure_factors(con, config, row_counts=summary.row_counts) == \
+            assets.exposure_factors(con, config)
     window = config.assets.window_daily
     assert len(reads) == 1 and reads[0][0] is not None
     # a window and READ_MARGIN asset dates before the new day, through it: not the history

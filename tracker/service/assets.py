@@ -58,7 +58,8 @@ class Panel:
     frequency: str
 
 
-def exposure_factors(con, config: Config | None = None, frequency: str = "daily") -> list[str]:
+def exposure_factors(con, config: Config | None = None, frequency: str = "daily", *,
+                     row_counts: dict | None = None) -> list[str]:
     """The factors the asset layer regresses on (see the module docstring).
 
     The traded factors of ``frequency`` with at least 90% of the longest such history;
@@ -67,11 +68,17 @@ def exposure_factors(con, config: Config | None = None, frequency: str = "daily"
     its current fit's columns while they are still eligible, else the most volatile
     (:func:`tracker.service.market.choose_columns`). A window of a few hundred rows
     cannot carry hundreds of regressors, and each extra factor costs every asset-date
-    a larger solve, so the set stays as small as the market's.
+    a larger solve, so the set stays as small as the market's. ``row_counts`` (factor id
+    -> stored rows, as an estimation run's inputs count them) spares the count over the
+    whole return table.
     """
     from tracker.service.market import MARKET, MODEL_MARKET, choose_columns
 
-    counts = dict(con.execute(sql("assets.factor_row_counts"), [frequency]).fetchall())
+    if row_counts is None:
+        counts = dict(con.execute(sql("assets.factor_row_counts"), [frequency]).fetchall())
+    else:
+        counts = {f: int(row_counts.get(f, 0)) for (f,) in con.execute(sql("assets.traded_factors"),
+                                                                       [frequency]).fetchall()}
     longest = max(counts.values(), default=0)
     if longest == 0:
         return []
@@ -137,7 +144,7 @@ def _window(config: Config, frequency: str) -> int:
 READ_MARGIN = 64
 
 
-def update_exposures(store: Store, config: Config) -> int:
+def update_exposures(store: Store, config: Config, *, row_counts: dict | None = None) -> int:
     """Store rolling exposures for dates not yet estimated; return rows written.
 
     A revision of an asset return or of the risk-free rate since the last write
@@ -146,12 +153,13 @@ def update_exposures(store: Store, config: Config) -> int:
     update reads the last window of rows (with a margin), not the whole history: the
     rolling estimates of the new dates only see that window, and when the read turns out
     to hold fewer than a window of complete rows before them it is done again in full.
+    ``row_counts``: see :func:`exposure_factors`.
     """
     window = _window(config, "daily")
     with store.connect() as con:
         if con.execute(sql("assets.assets")).df().query("frequency == 'daily'").empty:
             return 0
-        factors = exposure_factors(con, config)
+        factors = exposure_factors(con, config, row_counts=row_counts)
         if not factors:
             return 0
         last = con.execute(sql("assets.last_exposure_date")).fetchone()[0]

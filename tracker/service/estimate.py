@@ -96,6 +96,7 @@ class RunSummary:
     rows_written: int = 0
     skipped: str = ""
     timings: dict = field(default_factory=dict)  # phase -> seconds: read, fits, filters, market, write, exposures
+    row_counts: dict | None = None               # factor_id -> stored rows, as the run read them
 
     def describe(self) -> str:
         if self.skipped:
@@ -274,7 +275,7 @@ def update(
         from tracker.service.assets import update_exposures
 
         t0 = time.perf_counter()
-        n = update_exposures(store, config)
+        n = update_exposures(store, config, row_counts=summary.row_counts)
         summary.timings["exposures"] = time.perf_counter() - t0
         if n:
             summary.kinds["*exposures*"] = "advance"
@@ -303,10 +304,12 @@ def _update_locked(store, config, refit, only, progress, executor, observer=None
     # run allocates (~0.1 s of a 500-factor day). New objects are still collected.
     gc.freeze()
     try:
-        return _estimate_and_write(store, config, inp, plans, refit, progress, executor, observer, cold,
-                                   started, lap, timings)
+        summary = _estimate_and_write(store, config, inp, plans, refit, progress, executor, observer, cold,
+                                      started, lap, timings)
     finally:
         gc.unfreeze()
+    summary.row_counts = {f: r.n_rows for f, r in inp.rows.items()}
+    return summary
 
 
 @contextmanager
