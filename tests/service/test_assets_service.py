@@ -152,3 +152,26 @@ def test_exposures_take_the_market_regimes_factors_and_follow_a_change_of_them(e
     assert update_exposures(store, small) == 0                 # and then nothing is due
     view = load_assets_view(store, small)
     assert view.status == "ok" and set(view.factors) == set(chosen)
+
+
+def test_exposure_rows_are_the_same_in_small_frames(monkeypatch):
+    # the rows to store are built and inserted a run of dates at a time (FRAME_ROWS): the
+    # same rows, cut anywhere, as in one frame
+    import numpy as np
+
+    from tracker.estimation.exposures import RollingExposureModel
+    from tracker.service import assets
+
+    rng = np.random.default_rng(3)
+    f = rng.normal(0, 0.01, (160, 2))
+    y = f @ rng.normal(1, 0.3, (2, 5)) + rng.normal(0, 0.01, (160, 5))
+    y[150, 1] = np.nan
+    est = RollingExposureModel(60, min_nobs=59).fit(y, f)
+    whole = pd.concat(list(assets._exposure_frames(est, 1, 60)), ignore_index=True)
+    monkeypatch.setattr(assets, "FRAME_ROWS", 37)
+    frames = list(assets._exposure_frames(est, 1, 60))
+    assert len(frames) > 10 and max(len(x) for x in frames) <= 37 + 3 * 5
+    cut = pd.concat(frames, ignore_index=True)
+    key = ["date", "asset_id", "factor_id"]
+    pd.testing.assert_frame_equal(cut.sort_values(key, ignore_index=True), whole.sort_values(key, ignore_index=True))
+    assert len(whole) == int((est.cell_status == 0).sum()) * 3     # intercept and two factors per cell

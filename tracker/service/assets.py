@@ -201,35 +201,45 @@ def update_exposures(store: Store, config: Config, *, row_counts: dict | None = 
     first_row = max(0, start - (window - 1))
     est = model.fit(panel.excess.iloc[first_row:], panel.factors.iloc[first_row:], output_from=start - first_row) \
         if start < len(dates) else None
-    frame = _exposure_frame(est, vintage, window) if est is not None else pd.DataFrame()
+    written = 0
     with store.transaction() as con:
         if supersede is not None:
             con.execute(sql("assets.supersede_exposures"), [supersede])
-        if len(frame):
+        for frame in (_exposure_frames(est, vintage, window) if est is not None else ()):
             con.register("incoming_frame", frame)
             con.execute(sql("assets.insert_exposure_frame"))
             con.unregister("incoming_frame")
-    return len(frame)
+            written += len(frame)
+    return written
 
 
-def _exposure_frame(est, vintage: int, window: int) -> pd.DataFrame:
+# stored exposure rows built and inserted at a time: a first derivation of 1,000 assets
+# over 1,000 days is 3.2 million rows, which as one frame (and its copies) cost ~0.9 GB
+FRAME_ROWS = 250_000
+
+
+def _exposure_frames(est, vintage: int, window: int):
+    """The stored rows of ``est`` as frames of about FRAME_ROWS rows, a run of dates each."""
     t, n, k = est.betas.shape
-    if t == 0:
-        return pd.DataFrame()
-    ok = est.cell_status == 0                                   # (T, N)
-    dates = np.repeat(np.asarray(est.dates), n)
-    assets = np.tile(np.asarray(est.assets), t)
-    parts = []
-    for j, fid in enumerate((ALPHA,) + tuple(est.factors)):
-        beta = est.alpha if j == 0 else est.betas[:, :, j - 1]
-        se = est.alpha_se if j == 0 else est.se[:, :, j - 1]
-        parts.append(pd.DataFrame({
-            "asset_id": assets, "factor_id": fid, "date": dates,
-            "vintage": vintage, "beta": np.where(ok, beta, np.nan).ravel(),
-            "beta_se": np.where(ok, se, np.nan).ravel(), "window_rows": window,
-        }))
-    df = pd.concat(parts, ignore_index=True)
-    return df[np.isfinite(df["beta"])]
+    step = max(1, FRAME_ROWS // max(n * (k + 1), 1))
+    for a in range(0, t, step):
+        b = min(a + step, t)
+        ok = est.cell_status[a:b] == 0                           # (dates, N)
+        dates = np.repeat(np.asarray(est.dates[a:b]), n)
+        assets = np.tile(np.asarray(est.assets), b - a)
+        parts = []
+        for j, fid in enumerate((ALPHA,) + tuple(est.factors)):
+            beta = est.alpha[a:b] if j == 0 else est.betas[a:b, :, j - 1]
+            se = est.alpha_se[a:b] if j == 0 else est.se[a:b, :, j - 1]
+            keep = (ok & np.isfinite(beta)).ravel()
+            parts.append(pd.DataFrame({
+                "asset_id": assets[keep], "factor_id": fid, "date": dates[keep],
+                "vintage": vintage, "beta": beta.ravel()[keep],
+                "beta_se": se.ravel()[keep], "window_rows": window,
+            }))
+        frame = pd.concat(parts, ignore_index=True)
+        if len(frame):
+            yield frame
 
 
 @dataclass(frozen=True)
