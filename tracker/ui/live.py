@@ -14,8 +14,8 @@ A pass, run in a worker thread every ``[ui] refresh_s`` seconds:
 
 Every store access is one short connection (``Store.connect``), so a second process on
 the same store works; a pass holds the store open across them (``Store.hold``: ~1 s for a
-day's drop and update), letting go before any refit. Stopping: :attr:`LiveLoop.stop` is checked at every progress step
-and between fits; a run in flight is abandoned before it writes anything (``update``
+day's drop and update), letting go before any refit. Stopping: :attr:`LiveLoop.stop` is
+checked at every progress step and between fits; a run in flight is abandoned before it writes anything (``update``
 writes all results in one transaction at the end) and its worker processes are
 terminated, so quitting never waits for a long refit.
 """
