@@ -351,9 +351,9 @@ class RollingExposureModel:
             enough = n_i >= min_nobs
             if not enough.any():
                 continue
-            complete = enough & (n_i == cum_rows[t + 1] - cum_rows[a])
-            if moments is None:
-                complete = np.zeros_like(enough)
+            # without sliding sums every asset goes through its own window (_direct_cells)
+            complete = (enough & (n_i == cum_rows[t + 1] - cum_rows[a]) if moments is not None
+                        else np.zeros_like(enough))
             partial = enough & ~complete
             cells = []
             direct = partial

@@ -367,13 +367,7 @@ class HistorySummary:
     def from_dict(cls, d: dict) -> HistorySummary:
         if int(d["version"]) == 1:
             return cls._from_version_1(d)
-        lengths = [int(n) for n in d["lengths"]]
-        if len(lengths) != 12:
-            raise ValueError("a history summary's packed floats do not have their 12 parts")
-        flat = _floats(d["floats"])
-        if flat.size != sum(lengths):
-            raise ValueError("a history summary's packed floats do not match their lengths")
-        parts = np.split(flat, np.cumsum(lengths)[:-1])
+        parts = _packed_parts(d)
         k = int(d["k"])
         run = dict(d["run"])
         run["value"], run["cur_value"] = _none(float(parts[11][0])), _none(float(parts[11][1]))
@@ -460,15 +454,21 @@ def head_from_state(state: dict | None, sizes: dict | None, frequency: str) -> S
             return SummaryHead(int(d["n_rows"]), LagSums.from_dict(d["returns"]))
         for key in ("loglik_base", "k", "gap", "run", "spacing", "last_date"):
             d[key]
-        lengths = [int(n) for n in d["lengths"]]
-        flat = _floats(d["floats"])
-        if len(lengths) != 12 or flat.size != sum(lengths):
-            return None
-        cross, head, tail = np.split(flat[:sum(lengths[:3])], np.cumsum(lengths[:2]))
+        cross, head, tail = _packed_parts(d)[:3]
         return SummaryHead(int(d["n_rows"]), LagSums(int(d["returns"]["n"]), float(d["returns"]["total"]),
                                                      cross, head, tail))
     except (KeyError, TypeError, ValueError):
         return None
+
+
+def _packed_parts(d: dict) -> list[np.ndarray]:
+    """The 12 float arrays of a version-2 summary's packed field, in
+    :meth:`HistorySummary._float_parts` order; ValueError when they do not add up."""
+    lengths = [int(n) for n in d["lengths"]]
+    flat = _floats(d["floats"])
+    if len(lengths) != 12 or flat.size != sum(lengths):
+        raise ValueError("a history summary's packed floats do not match their 12 lengths")
+    return np.split(flat, np.cumsum(lengths)[:-1])
 
 
 def _last(old: np.ndarray, new: np.ndarray, size: int) -> np.ndarray:
