@@ -126,9 +126,19 @@ WHERE r.date > s.through_date ORDER BY r.factor_id, r.date;
 SELECT factor_id, date, ret FROM factor_returns
 WHERE factor_id IN (SELECT unnest(CAST(? AS VARCHAR[]))) AND date > ? ORDER BY factor_id, date;
 
--- name: upsert_filter_state_frame
-INSERT OR REPLACE INTO filter_states (subject_id, model, fit_id, through_date, state_json, updated_at)
-SELECT subject_id, model, fit_id, through_date, state_json, updated_at FROM incoming_frame;
+-- name: update_filter_state_frame
+-- The states of incoming_frame's subjects that have one; insert_new_filter_state_frame
+-- then adds the others. An update in place: INSERT OR REPLACE deletes and re-inserts
+-- every row (measured at 500 factors x 12 KB: 0.010-0.02 s here, 0.02-0.03 s replaced).
+UPDATE filter_states AS f
+SET fit_id = i.fit_id, through_date = i.through_date, state_json = i.state_json, updated_at = i.updated_at
+FROM incoming_frame AS i
+WHERE f.subject_id = i.subject_id AND f.model = i.model;
+
+-- name: insert_new_filter_state_frame
+INSERT INTO filter_states (subject_id, model, fit_id, through_date, state_json, updated_at)
+SELECT i.subject_id, i.model, i.fit_id, i.through_date, i.state_json, i.updated_at
+FROM incoming_frame AS i ANTI JOIN filter_states AS f ON f.subject_id = i.subject_id AND f.model = i.model;
 
 -- name: insert_run_frame
 INSERT INTO estimation_runs (run_id, kind, reason, subjects, from_date, through_date, started_at, status, message)

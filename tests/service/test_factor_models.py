@@ -5,6 +5,8 @@ from __future__ import annotations
 import dataclasses
 
 import numpy as np
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from tracker.config import config_from_dict
 from tracker.service.factor_models import FactorTask, drift_floor_q, run_factor
@@ -87,3 +89,62 @@ def test_vectorised_per_date_warnings_equal_the_row_by_row_rules():
             assert fast == slow
     codes = {r["code"] for r in per_date_warnings(out, "daily", 0, 0, loose)}
     assert codes == {"NOISE", "IMPLAUSIBLE_SR", "REGIME_AMBIG", "OUTLIER"}
+
+
+# ------------------------------------------------------------------ state JSON (orjson)
+
+_json_leaf = (
+    st.none() | st.booleans() | st.integers(-(2**63), 2**63 - 1) | st.text(max_size=12)
+    | st.floats(allow_nan=False, allow_infinity=False)
+    | st.sampled_from([0.0, -0.0, 5e-324, 2.2250738585072014e-308, 1e-300, 1.7976931348623157e308, 0.1, 1 / 3])
+)
+_json_value = st.recursive(
+    _json_leaf,
+    lambda inner: st.lists(inner, max_size=5) | st.dictionaries(st.text(max_size=8), inner, max_size=5),
+    max_leaves=40,
+)
+
+
+@settings(max_examples=300, deadline=None)
+@given(_json_value)
+def test_state_json_reads_and_writes_as_the_standard_library(value):
+    # reference: Python's standard-library json (allow_nan=False), which wrote and read
+    # every state before orjson: the same values both ways, every float bit for bit
+    import json
+
+    from tracker.service.factor_models import dumps, loads
+
+    text = dumps(value)
+    reference = json.dumps(value, allow_nan=False, separators=(",", ":"))
+    assert json.loads(text) == json.loads(reference) == loads(reference) == loads(text)
+    floats = [x for x in _leaves(loads(text)) if isinstance(x, float)]
+    expected = [x for x in _leaves(json.loads(reference)) if isinstance(x, float)]
+    assert [np.float64(x).tobytes() for x in floats] == [np.float64(x).tobytes() for x in expected]
+
+
+def _leaves(x):
+    if isinstance(x, dict):
+        for v in x.values():
+            yield from _leaves(v)
+    elif isinstance(x, list):
+        for v in x:
+            yield from _leaves(v)
+    else:
+        yield x
+
+
+def test_state_json_refuses_a_nan_or_an_infinity_anywhere():
+    # as json.dumps(allow_nan=False) did: a state that would read back a NaN as null
+    # is refused when written, at any depth and in numpy values too
+    import pytest
+
+    from tracker.service.factor_models import dumps
+
+    for bad in (float("nan"), float("inf"), -float("inf"), np.float64("nan"), np.float32("inf")):
+        for value in (bad, [1.0, bad], {"a": {"b": [0, {"c": bad}]}}, ({"x": bad},)):
+            with pytest.raises(ValueError, match="not JSON compliant"):
+                dumps(value)
+    with pytest.raises(ValueError, match="not JSON compliant"):
+        dumps({"y": np.array([0.1, np.nan])})
+    # integer keys are written as text, as the standard library did
+    assert dumps({1: 2.5, "k": [None, True]}) == '{"1":2.5,"k":[null,true]}'

@@ -157,6 +157,11 @@ def test_summary_head_and_the_mean_test_before_the_rows_are_appended():
         assert head_from_state(lost, sizes, "daily") is None
     short = {"history": {**state["history"], "lengths": state["history"]["lengths"][:-1]}}
     assert head_from_state(short, sizes, "daily") is None
+    # the head decodes only its own part of the packed field, but a field cut short (or
+    # with a character that is not base64 where the head reads) is still refused
+    text = state["history"]["floats"]
+    for bad in (text[:-4], "*" + text[1:]):
+        assert head_from_state({"history": {**state["history"], "floats": bad}}, sizes, "daily") is None
     assert head_from_state(None, sizes, "daily") is None
 
 

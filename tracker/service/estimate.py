@@ -27,7 +27,6 @@ from __future__ import annotations
 import dataclasses
 import fcntl
 import gc
-import json
 import math
 import os
 import time
@@ -70,6 +69,7 @@ from tracker.service.factor_models import (
     FactorOutput,
     FactorTask,
     dumps,
+    loads,
 )
 from tracker.service.factor_batch import run_advances
 from tracker.service.factor_warnings import run_factor_with_warnings
@@ -219,7 +219,7 @@ def _params_of(inp: Inputs, fid: str) -> dict:
     for model in FACTOR_MODELS:
         rec = inp.fits.get((fid, model))
         if rec is not None and rec["status"] == "ok":
-            out[model] = json.loads(rec["params_json"])
+            out[model] = loads(rec["params_json"])
     return out
 
 
@@ -511,8 +511,8 @@ def _write(store, config, inp, plans, outputs, market, started, timings: dict | 
                              _d(row.last), started, "ok", ""))
         premium.flush()
         regimes.flush()
-        _insert_rows(con, "estimation.upsert_filter_state_frame", state_rows,
-                     ("subject_id", "model", "fit_id", "through_date", "state_json", "updated_at"))
+        _insert_rows(con, ("estimation.update_filter_state_frame", "estimation.insert_new_filter_state_frame"),
+                     state_rows, ("subject_id", "model", "fit_id", "through_date", "state_json", "updated_at"))
         _insert_rows(con, "estimation.insert_run_frame", run_rows,
                      ("kind", "reason", "subjects", "from_date", "through_date", "started_at", "status", "message"))
         if warn_frame is not None:
@@ -534,13 +534,15 @@ def _write(store, config, inp, plans, outputs, market, started, timings: dict | 
     return premium.written
 
 
-def _insert_rows(con, query: str, rows: list[tuple], columns: tuple[str, ...]) -> None:
+def _insert_rows(con, query: str | tuple[str, ...], rows: list[tuple], columns: tuple[str, ...]) -> None:
+    """``rows`` as incoming_frame to the named statement(s) (several run in order)."""
     if not rows:
         return
     frame = pd.DataFrame(rows, columns=list(columns))
     con.register("incoming_frame", frame)
     try:
-        con.execute(sql(query))
+        for name in (query,) if isinstance(query, str) else query:
+            con.execute(sql(name))
     finally:
         con.unregister("incoming_frame")
 
@@ -551,6 +553,9 @@ def _current_fit_id(inp: Inputs, fid: str, model: str):
 
 
 def _d(x) -> object:
+    """A date for DuckDB (datetime.date) from the run's datetime64 days (or anything pandas reads)."""
+    if type(x) is np.datetime64 and not np.isnat(x):
+        return x.astype("datetime64[D]").item()
     return pd.Timestamp(x).date()
 
 

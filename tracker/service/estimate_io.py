@@ -10,13 +10,13 @@ states, runs), so a day's update of hundreds of factors is a handful of statemen
 
 from __future__ import annotations
 
-import json
 from dataclasses import dataclass, field
-from datetime import datetime, timedelta
+from datetime import date, datetime, timedelta
 
 import numpy as np
 import pandas as pd
 
+from tracker.service.factor_models import loads
 from tracker.store.sqlfiles import sql
 
 
@@ -55,6 +55,14 @@ class Inputs:
 
 
 def _day(x) -> np.datetime64 | None:
+    """A stored or booked date as datetime64[D]; None for a missing one. A day's update
+    converts a few thousand: DuckDB's dates and the books' ISO strings go straight to
+    numpy (pandas' Timestamp costs ~8 us a value), anything else through pandas."""
+    t = type(x)
+    if t is date or (t is str and len(x) == 10):
+        return np.datetime64(x, "D")
+    if t is np.datetime64:
+        return None if np.isnat(x) else x.astype("datetime64[D]")
     return None if x is None or pd.isna(x) else np.datetime64(pd.Timestamp(x).date(), "D")
 
 
@@ -131,7 +139,7 @@ def read_meta(con, *, verify: bool = False) -> Inputs:
     states = {}
     for subject, model, fit_id, through, text in con.execute(sql("estimation.filter_states")).fetchall():
         states[(subject, model)] = {"subject_id": subject, "model": model, "fit_id": fit_id,
-                                    "through_date": through, "state_json": text, "state": json.loads(text)}
+                                    "through_date": through, "state_json": text, "state": loads(text)}
     drop_seen = int(con.execute(sql("estimation.drop_seen")).fetchall()[0][0])
     books = {}
     for (subject, model), row in states.items():
