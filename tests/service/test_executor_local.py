@@ -115,6 +115,49 @@ def test_fork_split_reports_a_child_that_dies():
         fork_split(die_in_second, [1, 2])
 
 
+def test_forked_parts_give_this_process_its_own_result_while_the_children_run(tmp_path):
+    # the caller uses its own part's result (a day's update writes it) before the forked
+    # parts finish: here the child waits for a file that the parent makes only after it
+    # has its own result, so waiting for the children first would leave the child to give up
+    import time
+
+    from tracker.service.executor import forked_parts
+
+    flag = tmp_path / "parent-has-its-result"
+
+    def part(name):
+        if name == "here":
+            return "here", os.getpid()
+        deadline = time.monotonic() + 20
+        while not flag.exists():
+            if time.monotonic() > deadline:
+                return "gave up", os.getpid()
+            time.sleep(0.01)
+        return "saw the parent's result first", os.getpid()
+
+    with forked_parts(part, ["here", "child"]) as results:
+        own = next(results)
+        flag.touch()
+        rest = list(results)
+    assert own == ("here", os.getpid())
+    assert rest[0][0] == "saw the parent's result first" and rest[0][1] != os.getpid()
+
+
+def test_forked_parts_left_early_stop_the_children():
+    import time
+
+    import pytest
+
+    from tracker.service.executor import forked_parts
+
+    started = time.monotonic()
+    with pytest.raises(KeyError):
+        with forked_parts(lambda p: time.sleep(60) if p else os.getpid(), [0, 1]) as results:
+            next(results)
+            raise KeyError("the caller failed with its own result")
+    assert time.monotonic() - started < 30           # the sleeping child was stopped, not waited for
+
+
 def test_fork_split_children_write_nothing_to_the_parents_terminal(capfd):
     import sys
     import warnings

@@ -47,13 +47,13 @@ def _advanced(template, folder, min_per_part, monkeypatch):
 
 def test_split_advance_writes_what_one_process_writes(estimated_demo_template, tmp_path, monkeypatch):
     calls = []
-    original = executor_mod.fork_split
+    original = executor_mod.forked_parts
 
     def counting(fn, parts):
         calls.append(len(parts))
         return original(fn, parts)
 
-    monkeypatch.setattr(est, "fork_split", counting)
+    monkeypatch.setattr(est, "forked_parts", counting)
     one = _advanced(estimated_demo_template, tmp_path / "one", 10**6, monkeypatch)
     assert calls == [1, 1]                                  # one part: this process
     calls.clear()
@@ -62,6 +62,42 @@ def test_split_advance_writes_what_one_process_writes(estimated_demo_template, t
     for name in TABLES:
         pd.testing.assert_frame_equal(one[name], split[name], check_exact=True, obj=name)
     assert len(split["warnings"]) > 0
+
+
+def test_a_forked_part_that_fails_stores_nothing_of_the_day(estimated_demo_template, tmp_path, monkeypatch):
+    # this process writes its own part's results while the forked part still runs (one
+    # transaction for the day): when the forked part fails, the part already written is
+    # rolled back with the rest and the next update does the whole day
+    import os
+
+    from tracker.service import estimate_latest
+
+    shutil.copytree(estimated_demo_template.parent, tmp_path / "s")
+    store, config = open_store(tmp_path / "s" / "store.duckdb")
+    monkeypatch.setattr(est, "ADVANCE_PART_MIN", 1)
+    from tracker.seed_db import scenario as sc
+
+    _append_days(store, sc.held_back_days(sc.generate())[:1])
+    with store.connect() as con:
+        before = {name: con.execute(q).df() for name, q in TABLES.items()}
+    parent = os.getpid()
+    original = estimate_latest.prepare_writes
+
+    def failing_in_the_child(*args, **kwargs):
+        if os.getpid() != parent:
+            raise RuntimeError("the forked part failed")
+        return original(*args, **kwargs)
+
+    monkeypatch.setattr(est, "prepare_writes", failing_in_the_child)
+    with pytest.raises(RuntimeError, match="the forked part failed"):
+        est.update(store, config)
+    with store.connect() as con:
+        after = {name: con.execute(q).df() for name, q in TABLES.items()}
+    for name in TABLES:
+        pd.testing.assert_frame_equal(before[name], after[name], check_exact=True, obj=name)
+    monkeypatch.setattr(est, "prepare_writes", original)
+    summary = est.update(store, config)
+    assert set(summary.kinds.values()) == {"advance"} and summary.rows_written > 0
 
 
 def test_set_level_tests_are_the_stored_summaries_tests(estimated_demo_store):
@@ -103,6 +139,12 @@ def test_parts_split_evenly_and_keep_order():
     assert sum(parts, []) == items
     assert est._split(items, 20) == [[i] for i in items]       # never an empty part
     assert est._split([], 2) == []
+    # this process's own part (the first) can be given a smaller share
+    for n, parts, first in ((500, 2, 0.8), (10, 3, 0.5), (3, 3, 0.1), (7, 2, 3.0)):
+        split = est._split(list(range(n)), parts, first)
+        assert sum(split, []) == list(range(n)) and all(split) and len(split) == parts
+        others = [len(p) for p in split[1:]]
+        assert abs(len(split[0]) - first * sum(others) / len(others)) <= 1.5
 
 
 @pytest.mark.parametrize("n, workers, want", [(500, 2, 2), (100, 2, 1), (1000, 4, 4), (10, 2, 1)])

@@ -328,6 +328,11 @@ class FrameBatch:
             self.written += insert_frame(self.con, self.query, self._frame())
         self.parts, self.pending = [], 0
 
+    def table(self):
+        """The rows added so far as one Arrow table (None without rows), for a caller that
+        inserts it later (a forked part builds its frames; its parent inserts them)."""
+        return self._frame() if self.parts else None
+
     def _frame(self):
         import pyarrow as pa
 

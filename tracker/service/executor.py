@@ -13,6 +13,7 @@ import sys
 import traceback
 from collections import deque
 from collections.abc import Callable, Iterable, Iterator
+from contextlib import contextmanager
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from itertools import islice
 from typing import Any, Protocol
@@ -135,19 +136,26 @@ def fork_split(fn: Callable[[Any], Any], parts: list) -> list:
     pickled through a pipe. A child's exception is raised here. Serial where fork is not
     the start method (see :func:`worker_context`).
     """
+    with forked_parts(fn, parts) as results:
+        return list(results)
+
+
+@contextmanager
+def forked_parts(fn: Callable[[Any], Any], parts: list) -> Iterator[Iterator[Any]]:
+    """:func:`fork_split` as an iterator of the results in ``parts`` order, so that the
+    caller can use this process's own result (``parts[0]``'s, first) while the children
+    still run. Leaving the block before every result was taken (an error) stops the
+    children that are left."""
     ctx = worker_context()
     if len(parts) <= 1 or ctx is None:
-        return [fn(p) for p in parts]
+        yield (fn(p) for p in parts)
+        return
     children = []
-    finished = False
-    try:
-        for part in parts[1:]:
-            receive, send = ctx.Pipe(duplex=False)
-            proc = ctx.Process(target=_forked_part, args=(fn, part, send), daemon=True)
-            proc.start()
-            send.close()
-            children.append((proc, receive))
-        results = [fn(parts[0])]
+    taken = 0
+
+    def results():
+        nonlocal taken
+        yield fn(parts[0])
         for proc, receive in children:
             try:
                 ok, value = receive.recv()
@@ -156,13 +164,21 @@ def fork_split(fn: Callable[[Any], Any], parts: list) -> list:
                 raise RuntimeError(f"a forked worker ended without a result (exit code {proc.exitcode})") from None
             if not ok:
                 raise value
-            results.append(value)
-        finished = True
-        return results
+            taken += 1
+            yield value
+
+    try:
+        for part in parts[1:]:
+            receive, send = ctx.Pipe(duplex=False)
+            proc = ctx.Process(target=_forked_part, args=(fn, part, send), daemon=True)
+            proc.start()
+            send.close()
+            children.append((proc, receive))
+        yield results()
     finally:
         for proc, receive in children:
             receive.close()
-            if not finished:                    # this part or another failed: stop the rest
+            if taken < len(children):            # a part failed or was not waited for: stop the rest
                 proc.terminate()
             proc.join()
 
