@@ -548,20 +548,16 @@ class _RunWriter:
         return self
 
     def add(self, plans, writes: Writes) -> None:
-        """Store ``plans``' estimate rows, fits, filter states, run rows and warnings."""
-        if all(_framed(plan, writes) for plan in plans):
-            self.add_frames(part_frames(self.inp, plans, writes, self.started))
-            return
-        con, inp = self.con, self.inp
-        premium = FrameBatch(con, "estimation.insert_premium_frame")
-        regimes = FrameBatch(con, "estimation.insert_regime_frame")
-        state_rows, run_rows = [], []
+        """Store ``plans``' fits (their ids come from the store), supersede what a
+        re-derivation replaces, then their estimate rows, filter states, run rows and
+        warnings (each re-derivation touches only its own factor's rows, so all of them
+        can go before every plan's new rows)."""
+        con = self.con
+        fit_ids = {}
         for plan in plans:
             fid = plan.factor_id
-            pw = writes.plans[fid]
-            row = inp.rows[fid]
-            fit_ids = {}
-            for rec in pw.fits:
+            row = self.inp.rows[fid]
+            for rec in writes.plans[fid].fits:
                 fit_id = con.execute(sql("estimation.next_fit_id")).fetchone()[0]
                 con.execute(sql("estimation.retire_fits"), [fid, rec.model])
                 con.execute(sql("estimation.insert_fit"), [
@@ -569,29 +565,17 @@ class _RunWriter:
                     rec.loglik if math.isfinite(rec.loglik) else None, rec.n_obs, rec.converged,
                     _d(row.first), _d(row.last), plan.reason,
                 ])
-                fit_ids[rec.model] = fit_id
-            premium_fit = fit_ids.get(MODEL_PREMIUM) or _current_fit_id(inp, fid, MODEL_PREMIUM)
-            regime_fit = fit_ids.get(MODEL_REGIMES) or _current_fit_id(inp, fid, MODEL_REGIMES)
+                fit_ids.setdefault(fid, {})[rec.model] = fit_id
             if plan.kind == "rederive":
-                premium.flush()
-                regimes.flush()
                 for q in ("supersede_premium", "supersede_regime", "supersede_warnings"):
                     con.execute(sql(f"estimation.{q}"), [fid, _d(plan.emit_from)])
-            premium.add({"factor_id": fid, "vintage": plan.vintage, "fit_id": premium_fit}, pw.premium)
-            if pw.regimes is not None:
-                regimes.add({"subject_id": fid, "vintage": plan.vintage, "fit_id": regime_fit}, pw.regimes)
-            state_rows.append((fid, MODEL_PREMIUM, premium_fit or 0, _d(row.last), pw.state_json, inp.read_at))
-            run_rows.append((plan.kind, plan.reason, fid, _d(plan.emit_from) if plan.emit_from is not None else None,
-                             _d(row.last), self.started, "ok", ""))
+        premium = FrameBatch(con, "estimation.insert_premium_frame")
+        regimes = FrameBatch(con, "estimation.insert_regime_frame")
+        frames = _plan_rows(self.inp, plans, writes, self.started, premium, regimes, fit_ids)
         premium.flush()
         regimes.flush()
         self.written += premium.written
-        _insert_rows(con, ("estimation.update_filter_state_frame", "estimation.insert_new_filter_state_frame"),
-                     state_rows, STATE_COLUMNS)
-        _insert_rows(con, "estimation.insert_run_frame", run_rows, RUN_COLUMNS)
-        warn_frame = writes.warning_frame()
-        if warn_frame is not None:
-            insert_frame(con, "estimation.insert_warning_frame", warn_frame)
+        self.add_frames(frames)
 
     def add_part(self, plans, result: Writes | PartFrames) -> None:
         """A part's results: its :class:`PartFrames`, or its writes for :meth:`add`."""
@@ -662,21 +646,31 @@ def part_frames(inp: Inputs, plans, writes: Writes, started) -> PartFrames:
         raise ValueError("a plan with a new fit or a re-derivation needs the store to write it")
     premium = FrameBatch(None, "estimation.insert_premium_frame", limit=10**12)
     regimes = FrameBatch(None, "estimation.insert_regime_frame", limit=10**12)
+    frames = _plan_rows(inp, plans, writes, started, premium, regimes, {})
+    return dataclasses.replace(frames, premium=premium.table(), regimes=regimes.table())
+
+
+def _plan_rows(inp: Inputs, plans, writes: Writes, started, premium: FrameBatch, regimes: FrameBatch,
+               fit_ids: dict) -> PartFrames:
+    """``plans``' estimate rows added to ``premium`` and ``regimes``, and their filter
+    states, run rows and warnings as tables (``fit_ids``: this run's new fits' ids per
+    factor and model; otherwise the current fits')."""
     state_rows, run_rows = [], []
     for plan in plans:
         fid = plan.factor_id
         pw = writes.plans[fid]
         row = inp.rows[fid]
-        premium_fit = _current_fit_id(inp, fid, MODEL_PREMIUM)
+        new = fit_ids.get(fid, {})
+        premium_fit = new.get(MODEL_PREMIUM) or _current_fit_id(inp, fid, MODEL_PREMIUM)
         premium.add({"factor_id": fid, "vintage": plan.vintage, "fit_id": premium_fit}, pw.premium)
         if pw.regimes is not None:
-            regimes.add({"subject_id": fid, "vintage": plan.vintage, "fit_id": _current_fit_id(inp, fid, MODEL_REGIMES)},
-                        pw.regimes)
+            regime_fit = new.get(MODEL_REGIMES) or _current_fit_id(inp, fid, MODEL_REGIMES)
+            regimes.add({"subject_id": fid, "vintage": plan.vintage, "fit_id": regime_fit}, pw.regimes)
         state_rows.append((fid, MODEL_PREMIUM, premium_fit or 0, _d(row.last), pw.state_json, inp.read_at))
         run_rows.append((plan.kind, plan.reason, fid, _d(plan.emit_from) if plan.emit_from is not None else None,
                          _d(row.last), started, "ok", ""))
-    return PartFrames(premium.table(), regimes.table(), _rows_table(state_rows, STATE_COLUMNS),
-                      _rows_table(run_rows, RUN_COLUMNS), writes.warning_frame())
+    return PartFrames(None, None, _rows_table(state_rows, STATE_COLUMNS), _rows_table(run_rows, RUN_COLUMNS),
+                      writes.warning_frame())
 
 
 def _rows_table(rows: list[tuple], columns: tuple[str, ...]):
@@ -687,19 +681,6 @@ def _rows_table(rows: list[tuple], columns: tuple[str, ...]):
     if not rows:
         return None
     return pa.table({name: pa.array(list(values)) for name, values in zip(columns, zip(*rows))})
-
-
-def _insert_rows(con, query: str | tuple[str, ...], rows: list[tuple], columns: tuple[str, ...]) -> None:
-    """``rows`` as incoming_frame to the named statement(s) (several run in order)."""
-    if not rows:
-        return
-    frame = _rows_table(rows, columns)
-    con.register("incoming_frame", frame)
-    try:
-        for name in (query,) if isinstance(query, str) else query:
-            con.execute(sql(name))
-    finally:
-        con.unregister("incoming_frame")
 
 
 def _current_fit_id(inp: Inputs, fid: str, model: str):
