@@ -42,6 +42,7 @@ import pandas as pd
 from tracker.config import Config
 from tracker.estimation import warning_rules as wr
 from tracker.service import market as market_mod
+from tracker.service.assets import update_exposures
 from tracker.service.estimate_io import (
     BOOK_KEY,
     FrameBatch,
@@ -274,8 +275,6 @@ def update(
         if not acquired:
             return RunSummary(skipped="another process is estimating; its results will appear when it finishes")
         summary = _update_locked(store, config, refit, only, progress, executor, observer, cold)
-        from tracker.service.assets import update_exposures
-
         t0 = time.perf_counter()
         n = update_exposures(store, config, row_counts=summary.row_counts)
         summary.timings["exposures"] = time.perf_counter() - t0
