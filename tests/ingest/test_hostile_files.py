@@ -181,3 +181,35 @@ def test_scanner_screens_even_if_duckdb_would_run_it(secret):
     with pytest.raises(ScanError) as info:
         scan(text)
     assert info.value.rule == "not_constant"
+
+
+def test_a_kept_sandbox_starts_each_file_with_empty_tables_and_a_failed_one_is_closed(monkeypatch):
+    # A process keeps one sandbox between files (opening one costs ~0.03 s): the next file
+    # must not see the previous file's rows, and a sandbox that saw a failure is not reused.
+    import tracker.ingest.sandbox as sandbox
+
+    seen = []
+    real = sandbox._parse
+
+    def spy(con, text):
+        rows = sum(con.execute(f"SELECT count(*) FROM {t}").fetchall()[0][0]
+                   for t in ("factor_returns", "asset_returns", "risk_free", "factors", "assets"))
+        seen.append((con, rows))
+        staged = real(con, text)
+        # a row left behind in a staging table (the reader clears what it inserts; this
+        # stands in for anything it might not) must not reach the next file
+        con.execute("INSERT INTO risk_free VALUES (DATE '2026-11-02', 0.0001, 'daily')").fetchall()
+        return staged
+
+    monkeypatch.setattr(sandbox, "_parse", spy)
+    first = parse_drop(b"INSERT INTO factor_returns VALUES ('MKT', DATE '2026-11-03', 0.05 / 250);")
+    second = parse_drop(b"INSERT INTO factor_returns VALUES ('SMB', DATE '2026-11-04', 1 + 1);")
+    assert seen[0][0] is seen[1][0] and [n for _, n in seen] == [0, 0]
+    assert list(second.tables["factor_returns"].values["factor_id"]) == ["SMB"]
+    assert first.tables["factor_returns"].values["ret"][0] == 0.05 / 250   # still its own values
+    with pytest.raises(sandbox.Rejected):
+        parse_drop(b"INSERT INTO factor_returns VALUES ('SMB', DATE '2026-11-04', 1 / 'x');")
+    with pytest.raises(duckdb.Error):          # the failed file's sandbox was closed
+        seen[2][0].execute("SELECT 1").fetchall()
+    parse_drop(b"INSERT INTO factor_returns VALUES ('HML', DATE '2026-11-05', 0.001);")
+    assert seen[3][0] is not seen[2][0] and seen[3][1] == 0
