@@ -398,3 +398,25 @@ def test_longest_run_by_hand():
     assert wr.longest_run([1.0, 1.0, 1.0, 2.0])[::2] == (3, 1.0)
     assert wr.longest_run([np.nan, np.nan])[0] == 0  # NaNs are not a repeated value
     assert wr.longest_run([])[0] == 0
+
+
+def test_hindsight_gap_picks_nanargmax_date():
+    # Reference: numpy's nanargmax over the usable gaps (finite, positive sd), the rule's
+    # definition; the rule finds the same first largest gap without nanargmax's copies.
+    rng = np.random.default_rng(3)
+    th = WarningThresholds(hindsight_gap_sd=0.5)
+    for _ in range(300):
+        n = int(rng.integers(1, 30))
+        f, s, sd = rng.normal(size=n), rng.normal(size=n), rng.uniform(-0.2, 2.0, size=n)
+        for a in (f, s, sd):
+            a[rng.random(n) < 0.15] = np.nan
+        sd[rng.random(n) < 0.1] = 0.0
+        with np.errstate(divide="ignore", invalid="ignore"):
+            gap = np.abs(s - f) / sd
+        gap[~np.isfinite(gap) | ~(sd > 0)] = np.nan
+        got = wr.rule_hindsight_gap(f, s, sd, th)
+        if not np.isfinite(gap).any() or np.nanmax(gap) <= th.hindsight_gap_sd:
+            assert got is None
+        else:
+            i = int(np.nanargmax(gap))
+            assert got == wr._fire("HINDSIGHT_GAP", gap[i], th.hindsight_gap_sd, ago=n - 1 - i)

@@ -681,10 +681,12 @@ def rule_hindsight_gap(filtered, smoothed, filtered_sd, th: WarningThresholds
     f, s, sd = (np.asarray(a, dtype=float).ravel() for a in (filtered, smoothed, filtered_sd))
     with np.errstate(divide="ignore", invalid="ignore"):
         gap = np.abs(s - f) / sd
-    gap[~np.isfinite(gap) | ~(sd > 0)] = np.nan
-    if not np.isfinite(gap).any():
+    usable = np.isfinite(gap) & (sd > 0)
+    if not usable.any():
         return None
-    i = int(np.nanargmax(gap))
+    # the first largest usable gap (argmax over -inf elsewhere: nanargmax's pick, without
+    # its copies; a daily update calls this for every factor)
+    i = int(np.argmax(np.where(usable, gap, -np.inf)))
     if gap[i] > th.hindsight_gap_sd:
         return _fire("HINDSIGHT_GAP", gap[i], th.hindsight_gap_sd, ago=f.size - 1 - i)
     return None
