@@ -47,6 +47,7 @@ from tracker.service.estimate_io import (
     BOOK_KEY,
     FrameBatch,
     Inputs,
+    as_day,
     insert_frame,
     read_meta,
     read_stamps,
@@ -143,8 +144,7 @@ def _thresholds(config: Config) -> wr.WarningThresholds:
 def _plan(inp: Inputs, config: Config, refit_request: set[str] | None, only: set[str] | None) -> list[Plan]:
     plans = []
     every = config.models.refit_every_days
-    for f in inp.factors.itertuples():
-        fid = f.factor_id
+    for fid in inp.factors["factor_id"].tolist():
         if only is not None and fid not in only:
             continue
         row = inp.rows.get(fid)
@@ -156,7 +156,7 @@ def _plan(inp: Inputs, config: Config, refit_request: set[str] | None, only: set
         if state is None:
             plans.append(Plan(fid, "backfill", "initial", row.first, max(vintage, 0) + 1))
             continue
-        through = np.datetime64(pd.Timestamp(state["through_date"]).date(), "D")
+        through = as_day(state["through_date"])
         n_known = state["state"].get(MODEL_PREMIUM, {}).get("n_rows")
         if fid in inp.revisions:
             first = np.datetime64(pd.Timestamp(inp.revisions[fid]).date(), "D")

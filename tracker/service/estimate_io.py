@@ -54,7 +54,7 @@ class Inputs:
     books: dict = field(default_factory=dict)     # (subject, model) -> Book of its state
 
 
-def _day(x) -> np.datetime64 | None:
+def as_day(x) -> np.datetime64 | None:
     """A stored or booked date as datetime64[D]; None for a missing one. A day's update
     converts a few thousand: DuckDB's dates and the books' ISO strings go straight to
     numpy (pandas' Timestamp costs ~8 us a value), anything else through pandas."""
@@ -102,7 +102,7 @@ class Book:
     def of_state(cls, row: dict) -> Book | None:
         """The state's book when it belongs to exactly this state (same date), else None."""
         d = row["state"].get(BOOK_KEY) if isinstance(row.get("state"), dict) else None
-        if not isinstance(d, dict) or d.get("through") != str(_day(row["through_date"])):
+        if not isinstance(d, dict) or d.get("through") != str(as_day(row["through_date"])):
             return None
         try:
             codes = d.get("codes")
@@ -194,16 +194,16 @@ def _row_infos(con, factor_ids: list[str], books: dict) -> dict:
             if n_back:
                 exact.append(fid)           # a drop revised or filled in rows the book counted
                 continue
-            last = _day(last_after) if last_after is not None else _day(b.through)
-            last_finite = _day(lastf_after) if lastf_after is not None else _day(b.last_finite)
-            rows[fid] = RowInfo(b.n_rows + int(n_after), b.n_finite + int(nf_after), _day(b.first), last,
+            last = as_day(last_after) if last_after is not None else as_day(b.through)
+            last_finite = as_day(lastf_after) if lastf_after is not None else as_day(b.last_finite)
+            rows[fid] = RowInfo(b.n_rows + int(n_after), b.n_finite + int(nf_after), as_day(b.first), last,
                                 last_finite, b.n_rows, b.since_fit + int(n_after))
     if exact:
         after = {r[0]: (int(r[1]), int(r[2]))
                  for r in con.execute(sql("estimation.rows_after_state_of"), [exact]).fetchall()}
         for r in con.execute(sql("estimation.row_counts_of"), [exact]).fetchall():
             n_after, since_fit = after.get(r[0], (0, 0))
-            rows[r[0]] = RowInfo(int(r[1]), int(r[2]), _day(r[3]), _day(r[4]), _day(r[5]),
+            rows[r[0]] = RowInfo(int(r[1]), int(r[2]), as_day(r[3]), as_day(r[4]), as_day(r[5]),
                                  int(r[1]) - n_after, since_fit)
     return rows
 
