@@ -31,6 +31,17 @@ TABLES = {
 }
 
 
+def _tables(store) -> dict:
+    with store.connect() as con:
+        return {name: con.execute(q).df() for name, q in TABLES.items()}
+
+
+def _assert_unchanged(store, before: dict) -> None:
+    after = _tables(store)
+    for name in TABLES:
+        pd.testing.assert_frame_equal(before[name], after[name], check_exact=True, obj=name)
+
+
 def _advanced(template, folder, min_per_part, monkeypatch):
     shutil.copytree(template.parent, folder)
     store, config = open_store(folder / "store.duckdb")
@@ -41,8 +52,7 @@ def _advanced(template, folder, min_per_part, monkeypatch):
         _append_days(store, [day])
         summary = est.update(store, config)
         assert set(summary.kinds.values()) <= {"advance"} and summary.rows_written > 0
-    with store.connect() as con:
-        return {name: con.execute(q).df() for name, q in TABLES.items()}
+    return _tables(store)
 
 
 def test_split_advance_writes_what_one_process_writes(estimated_demo_template, tmp_path, monkeypatch):
@@ -78,8 +88,7 @@ def test_a_forked_part_that_fails_stores_nothing_of_the_day(estimated_demo_templ
     from tracker.seed_db import scenario as sc
 
     _append_days(store, sc.held_back_days(sc.generate())[:1])
-    with store.connect() as con:
-        before = {name: con.execute(q).df() for name, q in TABLES.items()}
+    before = _tables(store)
     parent = os.getpid()
     original = estimate_latest.prepare_writes
 
@@ -91,13 +100,49 @@ def test_a_forked_part_that_fails_stores_nothing_of_the_day(estimated_demo_templ
     monkeypatch.setattr(est, "prepare_writes", failing_in_the_child)
     with pytest.raises(RuntimeError, match="the forked part failed"):
         est.update(store, config)
-    with store.connect() as con:
-        after = {name: con.execute(q).df() for name, q in TABLES.items()}
-    for name in TABLES:
-        pd.testing.assert_frame_equal(before[name], after[name], check_exact=True, obj=name)
+    _assert_unchanged(store, before)
     monkeypatch.setattr(est, "prepare_writes", original)
     summary = est.update(store, config)
     assert set(summary.kinds.values()) == {"advance"} and summary.rows_written > 0
+
+
+def test_set_level_facts_come_from_this_process_and_its_failure_stops_the_day(
+        estimated_demo_template, tmp_path, monkeypatch):
+    # a split day takes the set-level facts once, in this process, after the forked part
+    # has started (it runs its models meanwhile and reads them when it needs them); when
+    # taking them fails, the forked part does not wait for ever and nothing is stored
+    import os
+
+    shutil.copytree(estimated_demo_template.parent, tmp_path / "s")
+    store, config = open_store(tmp_path / "s" / "store.duckdb")
+    monkeypatch.setattr(est, "ADVANCE_PART_MIN", 1)
+    from tracker.seed_db import scenario as sc
+
+    days = sc.held_back_days(sc.generate())[:2]
+    _append_days(store, days[:1])
+    before = _tables(store)
+    parent, taken = os.getpid(), []
+    original = est.set_context
+
+    def failing(*args, **kwargs):
+        taken.append(os.getpid())
+        raise RuntimeError("the set-level facts failed")
+
+    monkeypatch.setattr(est, "set_context", failing)
+    with pytest.raises(RuntimeError, match="the set-level facts failed"):
+        est.update(store, config)
+    _assert_unchanged(store, before)
+
+    def counted(*args, **kwargs):
+        taken.append(os.getpid())
+        return original(*args, **kwargs)
+
+    taken.clear()
+    monkeypatch.setattr(est, "set_context", counted)
+    summary = est.update(store, config)
+    assert set(summary.kinds.values()) == {"advance"} and summary.rows_written > 0
+    assert taken == [parent]          # once in this process (the day itself is held equal to
+                                      # one process's by the split test above)
 
 
 def test_set_level_tests_are_the_stored_summaries_tests(estimated_demo_store):
