@@ -9,6 +9,7 @@ tracked-set mean tests and their adjustment) are taken once, before the parts.
 from __future__ import annotations
 
 import json
+import os
 import shutil
 
 import pandas as pd
@@ -67,8 +68,27 @@ def test_split_advance_writes_what_one_process_writes(estimated_demo_template, t
     one = _advanced(estimated_demo_template, tmp_path / "one", 10**6, monkeypatch)
     assert calls == [1, 1]                                  # one part: this process
     calls.clear()
+    spill_dirs = []
+    mkdtemp = est.tempfile.mkdtemp
+
+    def recording(*args, **kwargs):
+        spill_dirs.append(mkdtemp(*args, **kwargs))
+        return spill_dirs[-1]
+
+    monkeypatch.setattr(est.tempfile, "mkdtemp", recording)
+    loads = []
+    load = est.SpilledFrames.load
+
+    def loading(self):
+        loads.append(sorted(k for k, v in self.paths.items() if v is not None))
+        return load(self)
+
+    monkeypatch.setattr(est.SpilledFrames, "load", loading)
     split = _advanced(estimated_demo_template, tmp_path / "split", 1, monkeypatch)
     assert calls == [2, 2]                                  # [service] workers = 2 parts
+    # the forked part's rows came through its spill folder, removed after each day
+    assert len(spill_dirs) == 2 and not any(os.path.exists(d) for d in spill_dirs)
+    assert len(loads) == 2 and all({"premium", "states", "runs"} <= set(k) for k in loads)
     for name in TABLES:
         pd.testing.assert_frame_equal(one[name], split[name], check_exact=True, obj=name)
     assert len(split["warnings"]) > 0
