@@ -247,3 +247,16 @@ def test_update_holds_the_store_for_a_day_and_lets_go_before_fits(estimated_demo
     assert summary.kinds.get("VALUE") == "refit"
     assert held_during[0] == ("map", False)
     assert not store.is_held
+
+
+def test_a_forked_part_without_room_to_spill_sends_its_rows_through_the_pipe(
+        estimated_demo_template, tmp_path, monkeypatch):
+    def no_room(self, folder):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(est.PartFrames, "spill", no_room)
+    split = _advanced(estimated_demo_template, tmp_path / "split", 1, monkeypatch)
+    monkeypatch.undo()
+    one = _advanced(estimated_demo_template, tmp_path / "one", 10**6, monkeypatch)
+    for name in TABLES:
+        pd.testing.assert_frame_equal(one[name], split[name], check_exact=True, obj=name)

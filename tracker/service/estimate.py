@@ -419,7 +419,10 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
         if all(_framed(p, part_writes) for p in part):
             frames = part_frames(inp, part, part_writes, started)
             if shared is not None and shared.in_forked_part():
-                frames = frames.spill(shared.spill_dir)
+                try:
+                    frames = frames.spill(shared.spill_dir)
+                except OSError:         # no room there: through the pipe, as before
+                    pass
             return {f: o.timings for f, o in outs.items()}, frames
         return {f: o.timings for f, o in outs.items()}, part_writes
 
