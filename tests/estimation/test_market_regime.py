@@ -245,3 +245,46 @@ def test_warm_refit_reaches_the_cold_optimum():
     # hmmlearn's EM stops at tol = 1e-2 in log-likelihood; allow a few times that
     assert warm.loglik >= cold.loglik - 0.05
     np.testing.assert_allclose(warm.params.transition, cold.params.transition, atol=2e-3)
+
+
+def test_runs_made_apart_and_in_any_order_give_the_same_fit(market_sim):
+    """A refit hands each EM run to a worker (prepare / run_start / finish); made one at a
+    time in reverse order, each by a fresh model, the fit is fit()'s to the last bit,
+    random starts included (each start draws its cuts from its own seeded stream)."""
+    x, _ = market_sim
+    x = x[:1500, :4]
+    model = MarketRegimeModel(states=(2, 3), n_seeds=3, seed=4)
+    whole = model.fit(x)
+    prepared = model.prepare(x)
+    assert [(s.n_states, s.draw) for s in prepared.starts] == [
+        (k, i) for k in (2, 3) for i in range(3)]
+    runs = [MarketRegimeModel(states=(2, 3), n_seeds=3, seed=4).run_start(prepared, s)
+            for s in reversed(prepared.starts)]
+    apart = model.finish(prepared, runs)
+    assert whole.ok and apart.ok
+    assert apart.n_states == whole.n_states and apart.loglik == whole.loglik
+    np.testing.assert_array_equal(apart.params.covars, whole.params.covars)
+    np.testing.assert_array_equal(apart.params.transition, whole.params.transition)
+    assert [(c.loglik, c.seed, c.n_iter) for c in apart.candidates] == \
+        [(c.loglik, c.seed, c.n_iter) for c in whole.candidates]
+    # the random starts differ from each other (a stream reused by mistake would not)
+    assert len({model._random_cut(3, d)[1].tobytes() for d in (1, 2, 3)}) == 3
+    with pytest.raises(ValueError, match="missing"):
+        model.finish(prepared, runs[1:])
+
+
+def test_prepare_lists_warm_runs_and_skips_candidates_with_too_little_data(market_sim):
+    x, _ = market_sim
+    model = MarketRegimeModel(states=(2, 3, 4))
+    cold = model.fit(x[:600, :3])
+    warm = model.prepare(x[:600, :3], previous=cold.params, warm_start=True)
+    assert [(s.n_states, s.draw) for s in warm.starts] == [(cold.n_states, -1), (cold.n_states, 0)]
+    # 8 factors, 260 rows: 2,080 data points; at 12 per parameter, 3 states (140
+    # parameters) may be fitted, 4 states (191) may not: no EM run is made for them
+    strict = MarketRegimeModel(states=(2, 3, 4), min_obs_per_param=12)
+    tight = strict.prepare(x[:260])
+    assert tight.too_small == (4,)
+    assert {s.n_states for s in tight.starts} == {2, 3}
+    fit = strict.finish(tight, [strict.run_start(tight, s) for s in tight.starts])
+    assert [c.status for c in fit.candidates][-1] == "too_little_data"
+    assert "2080 data points for 191 parameters" in fit.candidates[-1].message

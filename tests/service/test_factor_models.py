@@ -91,6 +91,34 @@ def test_vectorised_per_date_warnings_equal_the_row_by_row_rules():
     assert codes == {"NOISE", "IMPLAUSIBLE_SR", "REGIME_AMBIG", "OUTLIER"}
 
 
+
+def test_warning_rows_cross_processes_unchanged():
+    """A worker's per-date rows are pickled as columns (WarningRows); what arrives is the
+    same list of the same dicts, dates still numpy day scalars, None and NaN kept."""
+    import pickle
+
+    from tracker.estimation.warning_rules import WarningThresholds
+    from tracker.service.factor_warnings import WarningRows, per_date_warnings
+
+    y = _regime_series(6, 1500)
+    y[400] = 0.2
+    dates = np.datetime64("2001-01-01") + np.arange(len(y))
+    out = run_factor(FactorTask("X", "daily", dates, y, SETTINGS, refit=True))
+    rows = per_date_warnings(out, "daily", 0, 0, WarningThresholds(regime_ambiguous_prob=0.9))
+    assert len({r["code"] for r in rows}) >= 2
+    rows[0] = {**rows[0], "value": float("nan")}
+    back = pickle.loads(pickle.dumps(WarningRows(rows), protocol=pickle.HIGHEST_PROTOCOL))
+    assert isinstance(back, WarningRows) and len(back) == len(rows)
+    assert [list(r) for r in back] == [list(r) for r in rows]          # same keys, same order
+    assert back[1:] == rows[1:] and np.isnan(back[0]["value"])
+    assert all(type(b["date"]) is type(r["date"]) and b["date"] == r["date"] for b, r in zip(back, rows))
+    # the dates travel as one array, not one object each
+    assert len(pickle.dumps(WarningRows(rows))) < len(pickle.dumps(list(rows)))
+    # rows of different shapes, and no rows, still round-trip
+    odd = WarningRows([{"date": dates[0], "code": "A"}, {"code": "B"}])
+    assert pickle.loads(pickle.dumps(odd)) == list(odd)
+    assert pickle.loads(pickle.dumps(WarningRows())) == []
+
 # ------------------------------------------------------------------ state JSON (orjson)
 
 _json_leaf = (

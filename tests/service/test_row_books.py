@@ -106,3 +106,21 @@ def test_a_refit_request_recounts_what_a_book_missed(empty_store):
     assert exact.rows["CCC"].n_rows == dates.size
     plans = {p.factor_id: p for p in _plan(exact, config, set(), None)}
     assert plans["CCC"].kind == "rederive"
+
+
+def test_codes_at_a_day_read_from_the_end_equal_a_scan_of_every_row():
+    """The codes booked for a factor's newest stored date: _codes_at reads back from the
+    end of the date-ordered rows; a scan of every row is its reference twin, including
+    rows after the day (a last row whose return is missing is not stored, so the newest
+    stored date is earlier) and dates given as text."""
+    from tracker.service.estimate_latest import _codes_at
+
+    days = np.datetime64("2020-01-01") + np.arange(6)
+    rows = [{"date": days[i], "code": c} for i, c in
+            [(0, "NOISE"), (1, "NOISE"), (3, "NOISE"), (3, "OUTLIER"), (4, "STALE"), (5, "FDR")]]
+    rows.insert(2, {"date": "2020-01-02", "code": "REGIME_AMBIG"})
+    for day in list(days) + [np.datetime64("2019-12-31"), np.datetime64("2020-02-01")]:
+        every = {r["code"] for r in rows if np.datetime64(r["date"], "D") == day}
+        assert _codes_at(rows, day) == every
+    assert _codes_at(rows, days[3]) == {"NOISE", "OUTLIER"}
+    assert _codes_at(rows, days[1]) == {"NOISE", "REGIME_AMBIG"}

@@ -339,6 +339,44 @@ def em_converged(run, tol: float) -> bool:
     return len(hist) >= 2 and abs(hist[-1] - hist[-2]) < tol
 
 
+@dataclass(frozen=True)
+class EmStart:
+    """One EM run of a market fit: ``n_states`` states from start ``draw`` (0: quantile
+    cuts of the volatility proxy; 1, 2, ...: random cuts; -1: the previous fit's optimum)."""
+
+    n_states: int
+    draw: int
+
+
+@dataclass(frozen=True, eq=False)
+class EmRun:
+    """What one EM run gave (:meth:`MarketRegimeModel.run_start`): status 'ok',
+    'failed', 'not_converged' or 'unidentified', the log-likelihood of the standardised
+    data at its optimum (NaN unless ok), its EM iterations and parameters (None unless ok)."""
+
+    start: EmStart
+    status: str
+    message: str
+    llf: float
+    n_iter: int
+    params: HmmParams | None
+
+
+@dataclass(frozen=True, eq=False)
+class PreparedMarketFit:
+    """A market fit's checked data and the EM runs it needs (:meth:`MarketRegimeModel.prepare`)."""
+
+    x: np.ndarray                      # (T, N) decimal
+    z: np.ndarray                      # x / scale
+    scale: np.ndarray                  # (N,) column standard deviations
+    columns: tuple | None
+    previous: MarketRegimeParams | None
+    warm: MarketRegimeParams | None    # the warm start, if this is a warm refit
+    states: tuple[int, ...]            # numbers of states tried
+    too_small: tuple[int, ...]         # of those, the ones with too few data per parameter
+    starts: tuple[EmStart, ...]
+
+
 # ----------------------------------------------------------------------------
 # Estimator
 # ----------------------------------------------------------------------------
@@ -411,19 +449,32 @@ class MarketRegimeModel:
         return market_filter(x, params, state)
 
     # -- initialisation --------------------------------------------------------
-    def _initial_groups(self, z, k, rng, first):
-        """Assign each row to one of k groups by a smoothed volatility proxy."""
-        t_len = z.shape[0]
-        window = self.init_window if first else int(rng.integers(5, 64))
-        proxy = np.convolve((z * z).mean(axis=1), np.ones(window) / window, mode="same")
-        if first:
-            cuts = np.linspace(0, 1, k + 1)[1:-1]
-        else:
-            # Random cut points with every group holding at least 5% of the rows.
+    def _random_cut(self, k: int, draw: int):
+        """(window, cuts) of random start ``draw`` (1, 2, ...) of ``k`` states.
+
+        Each number of states has its own stream (seed ``seed + 7919 k``) and start
+        ``draw`` takes its ``draw``-th pair from it, so any start can be made on its own,
+        in any process, and is the same as when the starts run one after another.
+        """
+        rng = np.random.default_rng(self.seed + 7919 * k)
+        for _ in range(draw):
+            window = int(rng.integers(5, 64))
+            # random cut points with every group holding at least 5% of the rows
             while True:
                 cuts = np.sort(rng.uniform(0.05, 0.95, k - 1))
                 if np.all(np.diff(np.r_[0.0, cuts, 1.0]) >= 0.05):
                     break
+        return window, cuts
+
+    def _initial_groups(self, z, k, draw: int):
+        """Assign each row to one of k groups by a smoothed volatility proxy: at quantile
+        cuts over a ``init_window`` window for draw 0, at random ones after."""
+        t_len = z.shape[0]
+        if draw == 0:
+            window, cuts = self.init_window, np.linspace(0, 1, k + 1)[1:-1]
+        else:
+            window, cuts = self._random_cut(k, draw)
+        proxy = np.convolve((z * z).mean(axis=1), np.ones(window) / window, mode="same")
         edges = np.quantile(proxy, cuts)
         groups = np.searchsorted(edges, proxy, side="right")
         if np.bincount(groups, minlength=k).min() < max(2, z.shape[1] + 1):
@@ -443,7 +494,6 @@ class MarketRegimeModel:
             covs = np.diagonal(covs, axis1=1, axis2=2)
         return HmmParams(np.full(k, 1.0 / k), trans, means, covs, self.covariance_type)
 
-    # -- one candidate ---------------------------------------------------------
     def _warm_start(self, previous: MarketRegimeParams, scale) -> HmmParams:
         """EM start at a previous fit's parameters (standardised units)."""
         n = scale.size
@@ -456,54 +506,61 @@ class MarketRegimeModel:
                          np.asarray(previous.means, float) / scale[None, :], covs,
                          self.covariance_type)
 
-    def _fit_candidate(self, z, k, scale, warm: MarketRegimeParams | None = None):
-        t_len, n = z.shape
+    # -- one EM run --------------------------------------------------------------
+    def run_start(self, prepared: PreparedMarketFit, start: EmStart) -> EmRun:
+        """One EM run of a prepared fit, with our convergence and identification verdicts.
+
+        The runs of a fit are independent of each other: :meth:`fit` makes them one after
+        another; a caller with workers may hand each to one (:meth:`prepare`,
+        :meth:`finish`).
+        """
+        z, k, i = prepared.z, start.n_states, start.draw
+        seed = self.seed + max(i, 0)
+        try:
+            if i < 0:
+                init = self._warm_start(prepared.warm, prepared.scale)
+            else:
+                init = self._start(k, z, self._initial_groups(z, k, i))
+            run = gaussian_hmm.fit(z, init, n_iter=self.n_iter, tol=self.tol,
+                                   covars_prior=self.covars_prior, min_covar=self.min_covar,
+                                   engine=self.engine)
+        except Exception as exc:  # one bad initialisation must not sink the rest
+            return EmRun(start, "failed", f"seed {seed}: failed ({exc})", np.nan, 0, None)
+        if not em_converged(run, self.tol):
+            return EmRun(start, "not_converged", f"seed {seed}: not converged after "
+                         f"{run.n_iter} EM iterations", np.nan, run.n_iter, None)
+        problem, llf = self._identification_problem(run.params, z)
+        if problem is not None:
+            return EmRun(start, "unidentified", f"seed {seed}: {problem}", np.nan,
+                         run.n_iter, None)
+        return EmRun(start, "ok", "ok", llf, run.n_iter, run.params)
+
+    def _candidate(self, prepared: PreparedMarketFit, k: int, runs: list[EmRun]):
+        """The best of ``runs`` (one number of states, in start order): the candidate and
+        its EM parameters (None unless usable)."""
+        t_len, n = prepared.z.shape
         n_params = n_free_parameters(k, n, self.covariance_type)
-        if t_len * n < self.min_obs_per_param * n_params:
+        if k in prepared.too_small:
             return MarketRegimeCandidate(
                 k, "too_little_data",
                 f"{t_len * n} data points for {n_params} parameters", np.nan, n_params,
                 np.nan, False, 0, -1), None
-        rng = np.random.default_rng(self.seed + 7919 * k)
-        log_shift = t_len * float(np.log(scale).sum())  # standardised -> decimal
-        best, reasons = None, []
-        # a warm refit (k is the previous fit's number of states): its optimum and the default
-        # quantile start; a cold fit: the default start and n_seeds - 1 random ones
-        runs = [-1, 0] if warm is not None else range(self.n_seeds)
-        for i in runs:
-            seed = self.seed + max(i, 0)
-            try:
-                if i < 0:
-                    start = self._warm_start(warm, scale)
-                else:
-                    start = self._start(k, z, self._initial_groups(z, k, rng, first=(i == 0)))
-                run = gaussian_hmm.fit(z, start, n_iter=self.n_iter, tol=self.tol,
-                                       covars_prior=self.covars_prior, min_covar=self.min_covar,
-                                       engine=self.engine)
-            except Exception as exc:  # one bad initialisation must not sink the rest
-                reasons.append(("failed", f"seed {seed}: failed ({exc})"))
-                continue
-            if not em_converged(run, self.tol):
-                reasons.append(("not_converged", f"seed {seed}: not converged after "
-                                f"{run.n_iter} EM iterations"))
-                continue
-            problem, llf = self._identification_problem(run.params, z)
-            if problem is not None:
-                reasons.append(("unidentified", f"seed {seed}: {problem}"))
-                continue
-            if best is None or llf > best[0]:
-                best = (llf, run, seed)
+        best = None
+        for run in runs:
+            if run.status == "ok" and (best is None or run.llf > best.llf):
+                best = run
         if best is None:
-            text = "; ".join(r[1] for r in reasons)
-            found = {r[0] for r in reasons}
+            text = "; ".join(r.message for r in runs)
+            found = {r.status for r in runs}
             status = next((st for st in ("not_converged", "unidentified") if st in found),
                           "failed")
             return MarketRegimeCandidate(k, status, text, np.nan, n_params, np.nan, False,
                                          0, -1), None
-        llf_dec = best[0] - log_shift
+        log_shift = t_len * float(np.log(prepared.scale).sum())  # standardised -> decimal
+        llf_dec = best.llf - log_shift
         bic = -2.0 * llf_dec + n_params * math.log(t_len)
         return MarketRegimeCandidate(k, "ok", "ok", llf_dec, n_params, bic, True,
-                                     best[1].n_iter, best[2]), best[1].params
+                                     best.n_iter, self.seed + max(best.start.draw, 0)), best.params
 
     def _identification_problem(self, params: HmmParams, z):
         """(problem or None, log-likelihood of ``z`` at ``params`` by the forward filter)."""
@@ -550,7 +607,19 @@ class MarketRegimeModel:
             A cold fit re-selects the number of states by BIC.
         columns : sequence of str, optional
             Factor names (overrides a DataFrame's).
+
+        The same as :meth:`prepare`, :meth:`run_start` for each of its ``starts`` and
+        :meth:`finish`, which is how a caller with workers spreads the EM runs.
         """
+        prepared = self.prepare(x, previous, columns, warm_start)
+        if isinstance(prepared, MarketRegimeFit):
+            return prepared
+        return self.finish(prepared, [self.run_start(prepared, s) for s in prepared.starts])
+
+    def prepare(self, x, previous: MarketRegimeParams | None = None, columns=None,
+                warm_start: bool = False) -> PreparedMarketFit | MarketRegimeFit:
+        """Check and standardise the data and list the EM runs the fit needs (arguments as
+        in :meth:`fit`); a failed fit when the data cannot be fitted at all."""
         if columns is None and hasattr(x, "columns"):
             columns = tuple(str(c) for c in x.columns)
         x = np.asarray(x, float)
@@ -570,20 +639,39 @@ class MarketRegimeModel:
             bad = [int(i) for i in np.flatnonzero(flat)]
             return self._failure("failed", f"factor columns {bad} are constant",
                                  t_len, n, columns=columns)
-        z = x / scale
-
-        cands, models = [], {}
         warm = previous if (warm_start and previous is not None and previous.n_factors == n
                             and previous.n_states in self.states
                             and np.all(np.isfinite(previous.means))
                             and np.all(np.isfinite(previous.covars))) else None
         states = (warm.n_states,) if warm is not None else self.states
-        for k in states:
-            cand, fitted = self._fit_candidate(z, k, scale, warm)
+        too_small = tuple(k for k in states if t_len * n < self.min_obs_per_param
+                          * n_free_parameters(k, n, self.covariance_type))
+        # a warm refit (k is the previous fit's number of states): its optimum and the default
+        # quantile start; a cold fit: the default start and n_seeds - 1 random ones
+        draws = (-1, 0) if warm is not None else tuple(range(self.n_seeds))
+        starts = tuple(EmStart(k, i) for k in states if k not in too_small for i in draws)
+        return PreparedMarketFit(x, x / scale, scale, columns, previous, warm, states,
+                                 too_small, starts)
+
+    def finish(self, prepared: PreparedMarketFit, runs) -> MarketRegimeFit:
+        """The fit from a prepared fit's EM runs (:meth:`run_start`, in any order): the
+        best run of each number of states, the BIC choice among them, states ordered."""
+        x, scale, columns, previous = (prepared.x, prepared.scale, prepared.columns,
+                                       prepared.previous)
+        t_len, n = x.shape
+        by_start = {r.start: r for r in runs}
+        missing = [s for s in prepared.starts if s not in by_start]
+        if missing:
+            raise ValueError(f"EM runs missing for {missing}")
+        cands, models = [], {}
+        for k in prepared.states:
+            cand, fitted = self._candidate(
+                prepared, k, [by_start[s] for s in prepared.starts if s.n_states == k])
             cands.append(cand)
             if fitted is not None:
                 models[k] = fitted
         cands = tuple(cands)
+        states = prepared.states
         usable = [c for c in cands if c.status == "ok"]
         if not usable:
             statuses = {c.status for c in cands}

@@ -45,6 +45,7 @@ import pandas as pd
 
 from tracker.config import Config
 from tracker.estimation import warning_rules as wr
+from tracker.estimation.market_regime import MarketRegimeFit
 from tracker.service import market as market_mod
 from tracker.service.assets import update_exposures
 from tracker.service.estimate_io import (
@@ -343,12 +344,19 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
     if progress:
         progress(0, total, "estimating")
     th = _thresholds(config)
-    # a due market fit goes to the workers with the factors' fits, first (the longest task),
-    # so it runs beside them rather than after them on one core
+    # a due market fit's EM runs (one per number of states and start) go to the workers with
+    # the factors' fits, first (the longest tasks), so they run beside them rather than
+    # after them on one core; the fit is put together here when the last run is in
     market_task = market_mod.fit_task(inp, config, cold=cold) if heavy else None
-    work = ([market_task] if market_task is not None else []) + [(t, th) for t in heavy]
+    market_fit, market_prep, market_work, market_runs = None, None, [], []
+    if market_task is not None:
+        market_prep = market_task.prepare()
+        if isinstance(market_prep, MarketRegimeFit):     # nothing to fit: the failure is the fit
+            market_fit = market_prep
+        else:
+            market_work = market_mod.run_tasks(market_task, market_prep)
+    work = market_work + [(t, th) for t in heavy]
     runner = executor or (executor_for(config) if len(work) > 1 else SerialExecutor())
-    market_fit = None
     # A refit of many factors (and nothing else) is written in chunks as the fits arrive,
     # each chunk in its own transaction, so memory holds a chunk's outputs, not every
     # factor's whole-history arrays and per-date warnings (at 100 factors x 15,000 days
@@ -387,7 +395,9 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
         store.let_go()      # fits take seconds to minutes: other processes may use the store meanwhile
     for out in runner.map(run_refit_item, work, ordered=False):
         if not isinstance(out, FactorOutput):
-            market_fit = out
+            market_runs.append(out)
+            if len(market_runs) == len(market_work):
+                market_fit = market_mod.finish_fit(market_task, market_prep, market_runs)
             continue
         outputs[out.factor_id] = out
         if observer is not None:
@@ -580,11 +590,12 @@ OWN_PART_SHARE = 0.75
 
 
 def run_refit_item(item):
-    """Top-level (picklable) worker task of a refit: a factor's ``(task, thresholds)`` or the
-    market's :class:`market.MarketFitTask`, with BLAS on one thread (``one_blas_thread``)."""
+    """Top-level (picklable) worker task of a refit: a factor's ``(task, thresholds)`` or one
+    EM run of the market's fit (:class:`market.MarketRunTask`), with BLAS on one thread
+    (``one_blas_thread``)."""
     with one_blas_thread():
-        if isinstance(item, market_mod.MarketFitTask):
-            return market_mod.run_fit_task(item)
+        if isinstance(item, market_mod.MarketRunTask):
+            return market_mod.run_start_task(item)
         return run_factor_with_warnings(item)
 
 

@@ -263,8 +263,7 @@ def prepare_writes(config, inp: Inputs, plans, outputs, sctx: SetContext) -> Wri
         codes = None
         if m.any():
             found = _plan_warning_rows(inp, plan, out, prep, m, th, sctx, diags.get(fid))
-            newest = out.dates[m].max()
-            codes = {r["code"] for r in found if np.datetime64(r["date"], "D") == newest}
+            codes = _codes_at(found, out.dates[m].max())
             res.rows.extend(found)
             res.vintages.append((len(res.rows), plan.vintage))
         book = _book(inp, plan, out, codes)
@@ -275,6 +274,22 @@ def prepare_writes(config, inp: Inputs, plans, outputs, sctx: SetContext) -> Wri
         res.plans[fid] = PlanWrite(premium_columns(out, m, ppy), regimes,
                                    _state_json(inp, plan, out, prep, book), tuple(out.fits))
     return res
+
+
+def _codes_at(rows: list[dict], day) -> set:
+    """The codes of ``rows`` dated ``day``. The rows are in date order (each date's
+    per-date rows, then the last date's latest-date rules), so the scan goes back from the
+    end and stops before ``day`` (a refit has ~15,000 rows a factor; only the last few are
+    read)."""
+    day = np.datetime64(day, "D")
+    codes = set()
+    for r in reversed(rows):
+        d = np.datetime64(r["date"], "D")
+        if d < day:
+            break
+        if d == day:
+            codes.add(r["code"])
+    return codes
 
 
 def _plan_warning_rows(inp: Inputs, plan, out: FactorOutput, prep: _Latest, m: np.ndarray,

@@ -22,7 +22,15 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from tracker.estimation.market_regime import MarketRegimeModel, MarketRegimeParams, market_filter
+from tracker.estimation.market_regime import (
+    EmRun,
+    EmStart,
+    MarketRegimeFit,
+    MarketRegimeModel,
+    MarketRegimeParams,
+    PreparedMarketFit,
+    market_filter,
+)
 from tracker.estimation.markov_regimes import RegimeFilterState
 from tracker.service.estimate_io import BOOK_KEY, Book, FrameBatch, regime_columns
 from tracker.service.executor import one_blas_thread
@@ -152,8 +160,9 @@ def read_market_input(con, inp, *, refit_all: bool, rederive: bool, config=None)
 
 @dataclass(frozen=True)
 class MarketFitTask:
-    """A market fit as a picklable task, so a refit runs it in a worker beside the factors'
-    fits instead of after them (:func:`run_fit_task`)."""
+    """A due market fit: its data and settings (:func:`fit_task`). A refit spreads its EM
+    runs over the workers beside the factors' fits (:func:`run_tasks`); elsewhere it runs
+    whole (:func:`run_fit_task`)."""
 
     x: np.ndarray                     # (T, N) complete rows, decimal
     columns: tuple[str, ...]
@@ -162,6 +171,22 @@ class MarketFitTask:
     states: tuple[int, ...]
     n_seeds: int
     seed: int
+
+    def model(self) -> MarketRegimeModel:
+        return MarketRegimeModel(states=self.states, n_seeds=self.n_seeds, seed=self.seed)
+
+    def prepare(self) -> PreparedMarketFit | MarketRegimeFit:
+        """:meth:`MarketRegimeModel.prepare` of this fit (a failed fit if the data cannot be fitted)."""
+        return self.model().prepare(self.x, previous=self.previous, columns=self.columns,
+                                    warm_start=self.warm_start)
+
+
+@dataclass(frozen=True)
+class MarketRunTask:
+    """One EM run of a due market fit, as a picklable worker task (:func:`run_start_task`)."""
+
+    fit: MarketFitTask
+    start: EmStart
 
 
 def fit_task(inp, config, *, cold: bool = False) -> MarketFitTask | None:
@@ -181,10 +206,33 @@ def fit_task(inp, config, *, cold: bool = False) -> MarketFitTask | None:
         m.market_seeds, m.seed)
 
 
+def run_tasks(task: MarketFitTask, prepared: PreparedMarketFit) -> list[MarketRunTask]:
+    """The fit's EM runs as worker tasks, most states first: the longest runs (a cold fit
+    of 10 factors x 15,000 days: ~1-3 s each for 4 states, 9 runs in all) start first, so
+    the factors' shorter fits fill in around them."""
+    starts = sorted(prepared.starts, key=lambda s: -s.n_states)      # stable within a number
+    return [MarketRunTask(task, s) for s in starts]
+
+
+def run_start_task(task: MarketRunTask) -> EmRun:
+    """Top-level (picklable) worker: one EM run of the market fit. The worker prepares the
+    data itself, as the caller did, so the same standardised rows are fitted."""
+    prepared = task.fit.prepare()
+    if isinstance(prepared, MarketRegimeFit):       # cannot happen: the caller's passed
+        raise RuntimeError(f"market fit cannot be prepared: {prepared.message}")
+    return task.fit.model().run_start(prepared, task.start)
+
+
+def finish_fit(task: MarketFitTask, prepared: PreparedMarketFit, runs) -> MarketRegimeFit:
+    """The market fit from its EM runs (BLAS on one thread, as in the workers)."""
+    with one_blas_thread():
+        return task.model().finish(prepared, runs)
+
+
 def run_fit_task(task: MarketFitTask):
-    """Top-level (picklable) worker: fit the market regime model."""
-    model = MarketRegimeModel(states=task.states, n_seeds=task.n_seeds, seed=task.seed)
-    return model.fit(task.x, previous=task.previous, columns=task.columns, warm_start=task.warm_start)
+    """The whole market fit in this process (its EM runs one after another)."""
+    return task.model().fit(task.x, previous=task.previous, columns=task.columns,
+                            warm_start=task.warm_start)
 
 
 def run_market(inp, config, *, refit_all: bool, rederive: bool, cold: bool = False,
