@@ -83,3 +83,39 @@ def test_few_tasks_take_the_per_factor_path(day_tasks, monkeypatch):
     monkeypatch.setattr(fb, "_run_batch", lambda ts, rows: calls.append(ts) or [])
     out = fb.run_advances(day_tasks[: fb.MIN_BATCH - 1])
     assert not calls and len(out) == min(len(day_tasks), fb.MIN_BATCH - 1)
+
+
+def _bits(a, b, where: str) -> None:
+    if isinstance(a, dict):
+        assert set(a) == set(b), where
+        for k in a:
+            _bits(a[k], b[k], f"{where}.{k}")
+    elif a is None or isinstance(a, (bool, str)):
+        assert a == b, where
+    else:
+        np.testing.assert_array_equal(np.asarray(a, float), np.asarray(b, float), err_msg=where)
+
+
+def test_a_factor_gets_the_same_bits_in_any_batch(day_tasks, monkeypatch):
+    """A day split over processes batches each part on its own (batch=True for every part
+    when the day batches): a factor's numbers must not depend on which others share its
+    batch or on its place in it, to the last bit, or the split day would store something
+    else than one process."""
+    tasks = [t for t in day_tasks if fb._batch_input(t) is not None]
+    assert len(tasks) >= 5
+    whole = {o.factor_id: o for o in fb.run_advances(tasks, batch=True)}
+    for part in (tasks[:2], tasks[::-1][:3], tasks[1:2]):
+        for out in fb.run_advances(part, batch=True):
+            ref = whole[out.factor_id]
+            for name in ARRAYS:
+                _bits(getattr(out, name), getattr(ref, name), f"{out.factor_id}.{name}")
+            _bits(out.states, ref.states, f"{out.factor_id}.states")
+            _bits(out.extras, ref.extras, f"{out.factor_id}.extras")
+    # and batch=False is the per-factor path whatever the number of tasks
+    calls = []
+    original = fb._run_batch
+    monkeypatch.setattr(fb, "_run_batch", lambda ts, rows: calls.append(len(ts)) or original(ts, rows))
+    fb.run_advances(tasks, batch=False)
+    assert calls == []
+    fb.run_advances(tasks[:1], batch=True)
+    assert calls == [1]

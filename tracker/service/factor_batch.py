@@ -41,14 +41,20 @@ from tracker.service.factor_models import (
 MIN_BATCH = 8
 
 
-def run_advances(tasks: list[FactorTask]) -> list[FactorOutput]:
-    """``[run_factor(t) for t in tasks]``, the everyday ones in one vectorised pass."""
+def run_advances(tasks: list[FactorTask], batch: bool | None = None) -> list[FactorOutput]:
+    """``[run_factor(t) for t in tasks]``, the everyday ones in one vectorised pass.
+
+    ``batch``: whether the everyday tasks take the vectorised pass (None: when there are at
+    least ``MIN_BATCH`` of them). The two paths agree to rounding, not to the last bit, so
+    a day split over processes decides once for all its parts (``batch``), and each factor
+    gets the numbers one process would have given it.
+    """
     inputs = {}
     for i, task in enumerate(tasks):
         got = _batch_input(task)
         if got is not None:
             inputs[i] = got
-    if len(inputs) < MIN_BATCH:
+    if not inputs or not (len(inputs) >= MIN_BATCH if batch is None else batch):
         return [run_factor(t) for t in tasks]
     batched = _run_batch([tasks[i] for i in inputs], list(inputs.values()))
     out, it = [], iter(batched)
