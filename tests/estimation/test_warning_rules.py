@@ -280,6 +280,19 @@ def test_noise_for_many_rows_equals_the_rule_row_by_row(th):
                                               if (w := wr.rule_noise(mu[i], sd[i], th)) is not None}
 
 
+
+def test_format_numbers_equals_format_number_value_by_value():
+    # the vectorised formatter of the refit's NOISE rows against format_number on each
+    # value: whole numbers written out below 1e6, 3 significant digits otherwise, n/a, inf
+    rng = np.random.default_rng(RNG_SEED)
+    edge = [0.0, -0.0, 1.0, -3.0, 999.0, 1000.0, 123456.0, 999999.0, 1e6, 1e6 + 1, 2.0**53,
+            0.5, 1.5, 2.5, -0.0004999, 9.995, 99.95, 1e-300, 5e-324, 1e300, np.nan, np.inf,
+            -np.inf, 0.1, 1 / 3, 1234.5]
+    values = np.concatenate([edge, rng.normal(0, 3, 2000), np.round(rng.normal(0, 1e4, 500)),
+                             10.0 ** rng.uniform(-8, 12, 500)])
+    assert wr.format_numbers(values) == [wr.format_number(v) for v in values]
+    assert wr.format_numbers([]) == []
+
 def test_fdr_rule_boundaries():
     th = WarningThresholds()
     assert wr.rule_multiple_testing(0.05, 0.051, th) is not None

@@ -296,6 +296,19 @@ def format_number(x: float) -> str:
     return f"{x:.3g}"
 
 
+def format_numbers(values) -> list[str]:
+    """:func:`format_number` of every value (its twin in the tests), for the many rows of a
+    refit: one '%.3g' per value, and the function itself only where it differs from that
+    (whole numbers, which it writes out in full, and NaN)."""
+    x = np.asarray(values, dtype=float).ravel()
+    out = ["%.3g" % v for v in x.tolist()]
+    with np.errstate(invalid="ignore"):
+        special = np.isnan(x) | ((x == np.trunc(x)) & (np.abs(x) < 1e6))
+    for i in np.flatnonzero(special).tolist():
+        out[i] = format_number(x[i])
+    return out
+
+
 def _fire(code: str, value: float, threshold: float, **extra) -> Warning:
     spec = CATALOGUE[code]
     text = {k: (format_number(v) if isinstance(v, (int, float, np.number))
@@ -550,19 +563,27 @@ def rule_noise_many(premium, premium_sd, th: WarningThresholds, volatility=None,
     # the text with every constant part filled in; {0} (value) and {1} (years) stay open
     template = {band: spec.detail_template.format(value="{0}", years_text="{1}", band_text=band, **constant)
                 for band in ("contains", "excludes")}
+    at = np.flatnonzero(fires)
+    r_all = ratio[at]
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        v_all = vol[at]
+        has_sr = np.isfinite(v_all) & (v_all > 0) & ppy_ok
+        sr_all = np.where(has_sr, mu[at] / np.where(has_sr, v_all, 1.0) * root, np.nan)
+        # as sig.years_for_t_stat(sr), rounded as round() does (half to even)
+        years_all = np.where(sr_all == 0.0, np.inf, np.round((2.0 / np.abs(sr_all)) ** 2))
+    r_text, sr_text = format_numbers(r_all), format_numbers(sr_all)
+    finite_years = np.isfinite(years_all)
+    years_text_all = format_numbers(np.where(finite_years, years_all, 0.0))
+    zero_text = "At a Sharpe ratio of zero no amount of data gives a t-stat of 2."
     out: dict[int, Warning] = {}
-    for i in np.flatnonzero(fires).tolist():
-        r, v, m = float(ratio[i]), float(vol[i]), float(mu[i])
+    for n, (i, r, sr_ok, yr_ok) in enumerate(zip(at.tolist(), r_all.tolist(), has_sr.tolist(),
+                                                  finite_years.tolist())):
         years_text = ""
-        if math.isfinite(v) and v > 0 and ppy_ok:
-            sr = m / v * root
-            a = abs(sr)                                  # as sig.years_for_t_stat(sr)
-            years = math.inf if a == 0.0 else (2.0 / a) ** 2
-            years_text = (f"At the current annual Sharpe ratio of {format_number(sr)}, a "
-                          f"t-stat of 2 needs about {format_number(round(years))} years of data."
-                          if math.isfinite(years) else
-                          "At a Sharpe ratio of zero no amount of data gives a t-stat of 2.")
-        detail = template["contains" if r < z_band else "excludes"].format(format_number(r), years_text)
+        if sr_ok:
+            years_text = (f"At the current annual Sharpe ratio of {sr_text[n]}, a "
+                          f"t-stat of 2 needs about {years_text_all[n]} years of data."
+                          if yr_ok else zero_text)
+        detail = template["contains" if r < z_band else "excludes"].format(r_text[n], years_text)
         out[i] = Warning("NOISE", spec.severity, spec.message, detail, r, float(limit), spec.source)
     return out
 

@@ -127,18 +127,25 @@ def per_date_warnings(out: FactorOutput, frequency: str, first_index: int, n_pri
         outlier = ok & np.isfinite(se) & (np.abs(se) > th.outlier_sd)
     rows: list[dict] = []
     fid = out.factor_id
-    for j in np.flatnonzero(noise | implausible | ambiguous | outlier).tolist():
+    # one pass over the rows where something fires (most of a long history, for NOISE),
+    # with the flags and dates taken out of numpy once rather than element by element
+    fire = np.flatnonzero(noise | implausible | ambiguous | outlier)
+    days = list(out.dates[first_index + fire])              # numpy day scalars, as stored
+    flags = (noise[fire].tolist(), implausible[fire].tolist(), ambiguous[fire].tolist(),
+             outlier[fire].tolist())
+    for j, date, is_noise, is_implausible, is_ambiguous, is_outlier in zip(fire.tolist(), days, *flags):
+        if is_noise:
+            rows.append(_row(fid, date, noise_at[j]))
+        if not (is_implausible or is_ambiguous or is_outlier):
+            continue
         i = first_index + j
         found = []
-        if noise[j]:
-            found.append(noise_at[j])
-        if implausible[j]:
+        if is_implausible:
             found.append(wr.rule_implausible_sharpe(float(sharpe[j]), float(years[j]), th))
-        if ambiguous[j]:
+        if is_ambiguous:
             found.append(wr.rule_regime_ambiguous(out.regime_filtered[i][None, :], th))
-        if outlier[j]:
+        if is_outlier:
             found.append(wr.rule_outlier(out.std_error[max(0, i - th.outlier_lookback + 1): i + 1], th))
-        date = out.dates[i]
         rows.extend(_row(fid, date, w) for w in found if w)
     return rows
 
