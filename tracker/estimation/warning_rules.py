@@ -462,8 +462,12 @@ def _status_failed(status: str | None) -> bool:
 
 
 def _as_days(dates) -> np.ndarray:
-    """Sorted unique datetime64[D] array."""
-    return np.unique(np.asarray(dates, dtype="datetime64[D]"))
+    """Sorted unique datetime64[D] array (a history's dates, already strictly increasing,
+    come back as they are: np.unique sorts them again, ~1 ms over 15,000 days)."""
+    d = np.asarray(dates, dtype="datetime64[D]")
+    if d.ndim == 1 and (d.size < 2 or bool(np.all(d[1:] > d[:-1]))):
+        return d
+    return np.unique(d)
 
 
 def _period_index(days: np.ndarray, frequency: str) -> np.ndarray:
