@@ -37,6 +37,23 @@ INSERT INTO model_fits (fit_id, subject_id, model, status, message, params_json,
                         converged, data_from, data_through, reason, is_current)
 VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, TRUE);
 
+-- name: next_fit_ids
+-- ? ids at once (a refit's new fits, written together)
+SELECT nextval('seq_fit_id') AS fit_id FROM range(?);
+
+-- name: retire_fits_frame
+-- The fits that incoming_frame's (subject, model) pairs replace; insert_fit_frame then adds them.
+UPDATE model_fits AS f SET is_current = FALSE
+FROM incoming_frame AS i
+WHERE f.subject_id = i.subject_id AND f.model = i.model AND f.is_current;
+
+-- name: insert_fit_frame
+INSERT INTO model_fits (fit_id, subject_id, model, status, message, params_json, loglik, n_obs,
+                        converged, data_from, data_through, reason, is_current)
+SELECT fit_id, subject_id, model, status, message, params_json, loglik, n_obs, converged,
+       data_from, data_through, reason, TRUE
+FROM incoming_frame;
+
 -- name: current_fits
 SELECT fit_id, subject_id, model, status, message, params_json, loglik, n_obs, converged,
        data_from, data_through, reason, fitted_at

@@ -51,3 +51,22 @@ def test_chunked_refit_writes_what_one_write_does(tmp_path, monkeypatch):
     # chunks, the first with the market, then the rest), against 1 (the version counts
     # writes)
     assert chunked[3] - one[3] == 2 * 3
+
+
+def test_refits_leave_one_current_fit_per_factor_and_model(tmp_path, monkeypatch):
+    """A write stores all of its new fits at once (ids, the fits they replace, the rows):
+    after a first estimation and two refits, each factor and model has exactly one
+    current fit, the newest, and every fit has its own id."""
+    _estimated(tmp_path / "s", 100, monkeypatch)
+    store, config = open_store(tmp_path / "s" / "store.duckdb", create_demo=False)
+    est.update(store, config, refit=set(), executor=SerialExecutor())
+    with store.connect() as con:
+        rows = con.execute("SELECT subject_id, model, fit_id, is_current FROM model_fits").fetchall()
+    assert len({r[2] for r in rows}) == len(rows)
+    by_key: dict = {}
+    for subject, model, fit_id, current in rows:
+        by_key.setdefault((subject, model), []).append((fit_id, current))
+    assert len(by_key) >= 7 * 3
+    for key, fits in by_key.items():
+        assert len(fits) == 3, key                               # first estimation, 2 refits
+        assert [c for _, c in sorted(fits)] == [False, False, True], key
