@@ -256,6 +256,12 @@ def test_noise_detail_states_years_needed():
     premium = 0.3 / math.sqrt(12) * vol
     w = wr.rule_noise(premium, 0.1, WarningThresholds(), volatility=vol, periods_per_year=12)
     assert "about 44 years" in w.detail
+    # a Sharpe ratio of 17 (early in a history, the premium still uncertain): (2/17)^2
+    # rounds to 0 years, said as under a year
+    big = 17.0 / math.sqrt(12) * vol
+    w = wr.rule_noise(big, big, WarningThresholds(), volatility=vol, periods_per_year=12)
+    assert "needs under a year of data" in w.detail and "about 0 years" not in w.detail
+    assert wr.rule_noise_many([big], [big], WarningThresholds(), [vol], 12)[0] == w
 
 
 @pytest.mark.parametrize("th", [WarningThresholds(), WarningThresholds(noise_band_level=0.5, noise_sd_multiple=1.5)])

@@ -506,6 +506,12 @@ def noise_band_z(th: WarningThresholds) -> float:
     return _two_sided_z(th.noise_band_level)
 
 
+def _years_phrase(years: str) -> str:
+    """'about N years', or 'under a year' where N rounds to 0 (a large Sharpe ratio of a
+    still uncertain premium, early in a history)."""
+    return "under a year" if years in ("0", "-0") else f"about {years} years"
+
+
 def rule_noise(premium, premium_sd, th: WarningThresholds, volatility=None,
                periods_per_year=None) -> Warning | None:
     """NOISE: |mu_{t|t}| < k sd, or the central band at the chosen level contains 0.
@@ -532,7 +538,7 @@ def rule_noise(premium, premium_sd, th: WarningThresholds, volatility=None,
         sr = premium / volatility * math.sqrt(periods_per_year)
         years = sig.years_for_t_stat(sr)
         years_text = (f"At the current annual Sharpe ratio of {format_number(sr)}, a "
-                      f"t-stat of 2 needs about {format_number(round(years))} years of data."
+                      f"t-stat of 2 needs {_years_phrase(format_number(round(years)))} of data."
                       if math.isfinite(years) else
                       "At a Sharpe ratio of zero no amount of data gives a t-stat of 2.")
     return _fire("NOISE", ratio, limit, sd_multiple=th.noise_sd_multiple,
@@ -585,7 +591,7 @@ def rule_noise_many(premium, premium_sd, th: WarningThresholds, volatility=None,
         years_text = ""
         if sr_ok:
             years_text = (f"At the current annual Sharpe ratio of {sr_text[n]}, a "
-                          f"t-stat of 2 needs about {years_text_all[n]} years of data."
+                          f"t-stat of 2 needs {_years_phrase(years_text_all[n])} of data."
                           if yr_ok else zero_text)
         detail = template["contains" if r < z_band else "excludes"].format(r_text[n], years_text)
         out[i] = Warning("NOISE", spec.severity, spec.message, detail, r, float(limit), spec.source)
