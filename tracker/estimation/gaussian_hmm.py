@@ -151,8 +151,9 @@ def _forward_backward(log_dens, startprob, transmat):
             a = pr * lik[t, j]
             alpha[t, j] = a
             c += a
+        inv = 1.0 / c
         for j in range(k):
-            alpha[t, j] /= c
+            alpha[t, j] *= inv
         scale[t] = c
         total += math.log(c)
     for j in range(k):
@@ -167,20 +168,23 @@ def _forward_backward(log_dens, startprob, transmat):
                 v = alpha[t, i] * transmat[i, j] * nxt[j]
                 pair[i, j] = v
                 tot += v
+        inv = 1.0 / tot
         for i in range(k):
             for j in range(k):
-                xi[i, j] += pair[i, j] / tot
+                xi[i, j] += pair[i, j] * inv
         g_tot = 0.0
+        inv = 1.0 / scale[t + 1]
         for i in range(k):
             b = 0.0
             for j in range(k):
                 b += transmat[i, j] * nxt[j]
-            beta[i] = b / scale[t + 1]
+            beta[i] = b * inv
             g = alpha[t, i] * beta[i]
             post[t, i] = g
             g_tot += g
+        inv = 1.0 / g_tot
         for i in range(k):
-            post[t, i] /= g_tot
+            post[t, i] *= inv
     return post, xi, total
 
 
@@ -191,12 +195,24 @@ def kernel():
 
 
 def outer_rows(z) -> np.ndarray | None:
-    """z_t z_t' of every row flattened, shape (T, N*N), for :func:`m_step`; None when
-    that would take more than 64 MB (many columns)."""
+    """The upper triangle (i <= j, row-major) of z_t z_t' of every row, shape
+    (T, N(N+1)/2), for :func:`m_step`; None when that would take more than 64 MB (many
+    columns). The products are symmetric, so the lower half would only double the M
+    step's largest product."""
     t_len, n = z.shape
-    if t_len * n * n * 8 > 64 * 2**20:
+    if t_len * n * (n + 1) // 2 * 8 > 64 * 2**20:
         return None
-    return np.einsum("tn,tm->tnm", z, z).reshape(t_len, n * n)
+    i, j = np.triu_indices(n)
+    return z[:, i] * z[:, j]
+
+
+def _symmetric(upper: np.ndarray, n: int) -> np.ndarray:
+    """(K, N, N) symmetric matrices from their upper triangles (K, N(N+1)/2)."""
+    i, j = np.triu_indices(n)
+    full = np.empty((upper.shape[0], n, n))
+    full[:, i, j] = upper
+    full[:, j, i] = upper
+    return full
 
 
 def m_step(z, post, xi, params: HmmParams, covars_prior: float, zz=None) -> HmmParams:
@@ -215,7 +231,7 @@ def m_step(z, post, xi, params: HmmParams, covars_prior: float, zz=None) -> HmmP
     if params.covariance_type == "full":
         n, k = z.shape[1], means.shape[0]
         if zz is not None:                                       # sum_t post_tk z_t z_t'
-            outer = (post.T @ zz).reshape(k, n, n)
+            outer = _symmetric(post.T @ zz, n)
         else:
             outer = np.stack([(z * post[:, s:s + 1]).T @ z for s in range(k)])
         obsmean = obs[:, :, None] * means[:, None, :]
