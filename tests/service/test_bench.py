@@ -57,6 +57,12 @@ def test_tiny_bench_writes_every_documented_field(tiny):
     assert cell["rows_loaded"] == 3 * 400
     assert UPDATE_FIELDS <= set(cell["full_refit"])
     assert cell["full_refit"]["kinds"] == {"backfill": 3}
+    # three cold refits, each from the store as loaded (default --refit-repeats 3): the
+    # median run is reported, and the store holds one estimation, not three
+    runs = cell["full_refit"]["repeats_wall_s"]
+    assert len(runs) == 3 and cell["full_refit"]["wall_s"] == sorted(runs)[1]
+    assert cell["store_rows"]["premium_estimates"] == 3 * (400 + 1 + 3)
+    assert "median of 3 refits" in text
     assert set(cell["full_refit"]["model_cpu_s"]) >= {"volatility", "premium", "regimes", "regime_premium"}
     assert NAIVE_FIELDS <= set(cell["naive"]) and cell["naive"]["factors"] == 3
     assert [i["new_days"] for i in cell["incremental"]] == [1, 3]
@@ -116,6 +122,7 @@ def test_reduced_grid_options_are_parsed():
     args = parser.parse_args(["--factors", "10,100", "--days", "2000"])
     assert (args.factors, args.days, args.refit_max) == ("10,100", "2000", 100)
     assert bench_command({"factors": "0", "days": "2000"}, lambda _: None) == 2   # refused, nothing run
+    assert bench_command({"factors": "3", "days": "400", "refit_repeats": 0}, lambda _: None) == 2
 
 
 def test_synthetic_panel_is_seeded_and_realistic():

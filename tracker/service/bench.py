@@ -7,7 +7,9 @@ own), on a seeded synthetic store bulk-loaded by :mod:`tracker.service.bench_dat
   service, ``update()`` on a store without estimates: every model of every factor
   fitted cold on the whole history, the market regime, every per-date and latest-date
   warning, all writes. Wall time, cost per factor, seconds per model (CPU in workers),
-  the market fit's seconds. ``--warm-refit`` also times ``update(refit=set())``.
+  the market fit's seconds: the run of median wall time of ``--refit-repeats`` (3), each
+  from the store as loaded, with every run's wall time. ``--warm-refit`` also times
+  ``update(refit=set())``.
 * **naive loop** (the same cells, first ``--naive-factors`` factors): cold statsmodels
   fits one factor after another in this process, ``UnobservedComponents`` local level
   (exact diffuse) and ``MarkovRegression`` (2 regimes, switching mean and variance,
@@ -82,6 +84,9 @@ def add_bench_arguments(parser) -> None:
                              "their state from borrowed parameters (default 100)")
     parser.add_argument("--naive-factors", type=int, default=0, metavar="K",
                         help="factors in the naive statsmodels loop (default 0: all of the cell)")
+    parser.add_argument("--refit-repeats", type=int, default=3, metavar="K",
+                        help="cold refits of each refit cell, each from the store as loaded; the "
+                             "median is reported (default 3; 1 for a quicker run)")
     parser.add_argument("--warm-refit", action="store_true", help="also time a warm refit of all factors")
     parser.add_argument("--sample-refit", type=int, default=4, metavar="K",
                         help="factors refit for real in a borrowed-state cell (default 4; 0 skips)")
@@ -127,6 +132,7 @@ def _options(args) -> dict:
         "factors": _ints(get("factors", DEFAULT_FACTORS)), "days": _ints(get("days", DEFAULT_DAYS)),
         "refit_max": int(get("refit_max", 100)), "naive_factors": int(get("naive_factors", 0) or 0),
         "warm_refit": bool(get("warm_refit", False)), "sample_refit": int(get("sample_refit", 4)),
+        "refit_repeats": int(get("refit_repeats", 3)),
         "new_days": _ints(get("new_days", "1,5")), "ingest_rows": int(get("ingest_rows", 1_000_000)),
         "ui": bool(get("ui", True)), "workers": get("workers"), "json": get("json"),
         "workdir": get("workdir"), "keep": bool(get("keep", False)), "seed": int(get("seed", 20261202)),
@@ -138,6 +144,8 @@ def _options(args) -> dict:
         raise ValueError("need at least one cell with >= 1 factor and >= 300 days")
     if opts["assets"] < 0:
         raise ValueError("--assets must not be negative")
+    if opts["refit_repeats"] < 1:
+        raise ValueError("--refit-repeats must be at least 1")
     if not opts["new_days"] or min(opts["new_days"]) < 1:
         raise ValueError("--new-days must list positive day counts")
     return opts
