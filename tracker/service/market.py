@@ -208,7 +208,7 @@ def fit_task(inp, config, *, cold: bool = False) -> MarketFitTask | None:
 
 def run_tasks(task: MarketFitTask, prepared: PreparedMarketFit) -> list[MarketRunTask]:
     """The fit's EM runs as worker tasks, most states first: the longest runs (a cold fit
-    of 10 factors x 15,000 days: ~1-3 s each for 4 states, 9 runs in all) start first, so
+    of 10 factors x 15,000 days: ~0.5-2 s each for 4 states, 9 runs in all) start first, so
     the factors' shorter fits fill in around them."""
     starts = sorted(prepared.starts, key=lambda s: -s.n_states)      # stable within a number
     return [MarketRunTask(task, s) for s in starts]
