@@ -1,8 +1,11 @@
 """Cheap estimated state for large benchmark stores: filter at borrowed parameters.
 
-A real backfill of 500 factors x 15,000 days takes hours on two cores (the Kim fit costs
-5-13 s a factor there), so for the incremental measurements on large stores the bench can
-build the stored state another way, and says so in its output:
+A real backfill of 500 factors x 15,000 days took hours on two cores when the Kim fit
+cost 5-13 s a factor; it now takes about two minutes (112 s measured with
+``--refit-max 500 --refit-repeats 1 --naive-factors 10``), but three of them, and the
+default naive loop over every factor of the cell (~30 min of statsmodels), would make the
+default grid slow. So for the incremental measurements on large stores the bench builds
+the stored state another way by default, and says so in its output:
 
 1. a few *twin* factors are fitted for real (:func:`run_factor` with ``refit=True``);
 2. every other factor gets a twin's parameters rescaled to its own volatility (the
