@@ -70,3 +70,23 @@ def test_refits_leave_one_current_fit_per_factor_and_model(tmp_path, monkeypatch
     for key, fits in by_key.items():
         assert len(fits) == 3, key                               # first estimation, 2 refits
         assert [c for _, c in sorted(fits)] == [False, False, True], key
+
+
+def test_a_market_with_no_candidate_to_fit_does_not_hold_back_the_chunks(tmp_path, monkeypatch):
+    """Six market states on 300 days of 7 factors: every candidate has too little data, so
+    the market fit has no EM run to wait for. Its failure is the market's fit at once: the
+    refit still writes in chunks (4 writes for 7 factors in chunks of 2) and records it."""
+    from tracker.config import config_from_dict
+
+    monkeypatch.setattr(est, "STREAM_CHUNK", 2)
+    store, _ = open_store(tmp_path / "store.duckdb", create_demo=False)
+    config = config_from_dict({"models": {"market_states_min": 6, "market_states_max": 6}})
+    load_panel(store, make_panel(7, 300, seed=5))
+    summary = est.update(store, config, executor=SerialExecutor())
+    assert summary.rows_written == 7 * 300
+    with store.connect() as con:
+        version = con.execute("SELECT value FROM store_meta WHERE key = 'estimates_version'").fetchone()[0]
+        status, message = con.execute("SELECT status, message FROM model_fits WHERE subject_id = '*market*' "
+                                      "AND is_current").fetchone()
+    assert int(version) == 4
+    assert status == "too_little_data" and "6 states" in message

@@ -198,12 +198,17 @@ def outer_rows(z) -> np.ndarray | None:
     """The upper triangle (i <= j, row-major) of z_t z_t' of every row, shape
     (T, N(N+1)/2), for :func:`m_step`; None when that would take more than 64 MB (many
     columns). The products are symmetric, so the lower half would only double the M
-    step's largest product."""
+    step's largest product. Filled a row of the triangle at a time (no temporaries the
+    size of the result)."""
     t_len, n = z.shape
     if t_len * n * (n + 1) // 2 * 8 > 64 * 2**20:
         return None
-    i, j = np.triu_indices(n)
-    return z[:, i] * z[:, j]
+    out = np.empty((t_len, n * (n + 1) // 2))
+    at = 0
+    for r in range(n):
+        np.multiply(z[:, r:r + 1], z[:, r:], out=out[:, at:at + n - r])
+        at += n - r
+    return out
 
 
 def _symmetric(upper: np.ndarray, n: int) -> np.ndarray:

@@ -46,7 +46,8 @@ def timed_update(store, config, executor=None, *, refit=None, only=None) -> dict
 
 def repeated_refit(store, config, executor, repeats: int) -> dict:
     """The first estimation of the loaded store ``repeats`` times, each from the store as
-    loaded (a copy of its file): the run of median wall time, with every run's wall time
+    loaded (a copy of its file): the run of median wall time (of an even number, the
+    slower of the two middle ones, never the flattering one), with every run's wall time
     (``repeats_wall_s``). A refit lasts seconds and the naive loop tens of seconds, so one
     refit's figure moved with the machine's load by a quarter either way while the
     loop's averaged it out. The runs give the same store (a refit is deterministic); the
@@ -62,7 +63,7 @@ def repeated_refit(store, config, executor, repeats: int) -> dict:
             runs.append(timed_update(store, config, executor))
     finally:
         loaded.unlink(missing_ok=True)
-    median = sorted(runs, key=lambda r: r["wall_s"])[(len(runs) - 1) // 2]
+    median = sorted(runs, key=lambda r: r["wall_s"])[len(runs) // 2]   # even count: the slower middle
     return {**median, "repeats_wall_s": [r["wall_s"] for r in runs]}
 
 

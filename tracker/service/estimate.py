@@ -355,6 +355,8 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
             market_fit = market_prep
         else:
             market_work = market_mod.run_tasks(market_task, market_prep)
+            if not market_work:     # no candidate with enough data: nothing to wait for
+                market_fit = market_mod.finish_fit(market_task, market_prep, [])
     work = market_work + [(t, th) for t in heavy]
     runner = executor or (executor_for(config) if len(work) > 1 else SerialExecutor())
     # A refit of many factors (and nothing else) is written in chunks as the fits arrive,
@@ -385,8 +387,9 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
         return market
 
     parts = _split(light_plans, _advance_parts(config, light_plans), OWN_PART_SHARE)
-    # the vectorised pass or the per-factor one, decided for the day, not for each part
-    # (they agree to rounding): a split day then stores what one process would
+    # the vectorised pass or the per-factor one, decided for the day from its number of
+    # advances, not for each part (they agree to rounding): a split day then stores what
+    # one process would; the tasks the batch cannot take still go one by one
     batch = len(light_plans) >= MIN_BATCH
     # A day of advances split over processes takes the set-level facts (~0.05-0.08 s for
     # 500 factors) in this process after the forked parts have started, so that they run
@@ -415,7 +418,9 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
                 progress(done, total, f"fitted {out.factor_id}")
             # its latest-date warnings and rows, while the workers fit the rest (this process
             # only waits for them meanwhile: ~0.03 s a factor over 15,000 days that no longer
-            # comes after the last fit); a plan's writes do not depend on the others'
+            # comes after the last fit). Each refit plan is prepared alone, in a chunked
+            # refit as in one write, so its misfit tests take statsmodels one by one (the
+            # batched twin of an advance day agrees with it to rounding)
             t_prep = time.perf_counter()
             prepared.join(prepare_writes(config, inp, [by_id[out.factor_id]],
                                          {out.factor_id: out}, sctx))
