@@ -431,16 +431,10 @@ def _estimate_and_write(store, config, inp, plans, refit, progress, executor, ob
                 outputs.clear()
                 prepared = Writes()
     lap("fits")
-    # the run's plans still to write, in plan order: the refits not written as they came
-    # (outputs, prepared as they came), then the advances, prepared whole here (models and
-    # warnings, no store)
+    # the refits not written as they came, each prepared as it came (the advances are
+    # prepared in their parts, below)
     rest = [p for p in plans if p.factor_id in outputs]
     writes = prepared
-    if shared is None:
-        t_prep = time.perf_counter()
-        writes.join(prepare_writes(config, inp, [p for p in rest if p.factor_id not in writes.plans],
-                                   outputs, sctx))
-        detail["write_warnings"] = detail.get("write_warnings", 0.0) + time.perf_counter() - t_prep
 
     def advance(part: list[Plan]) -> tuple[dict, Writes]:
         if shared is not None:
